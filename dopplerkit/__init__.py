@@ -1,0 +1,92 @@
+"""dopplerkit: relativistic kinematics of jets and outflows from their spectra.
+
+The kinematics core is imported eagerly (it needs only numpy and astropy.units);
+the other modules load on first use, so ``import dopplerkit`` stays cheap::
+
+    import dopplerkit as dk
+    dk.doppler_factor(0.26, 79 * u.deg)
+    dk.spectra.boost_spectrum(...)      # loads specutils on first access
+"""
+
+from __future__ import annotations
+
+import importlib
+
+from ._version import __version__
+from .exceptions import (
+    DegenerateGeometryWarning,
+    DopplerkitWarning,
+    FitAtBoundWarning,
+    MediumWarning,
+    NearLightSpeedWarning,
+    UnresolvedLineWarning,
+)
+from .kinematics import (
+    aberrate,
+    apparent_speed,
+    beaming_factor,
+    beta_cos_theta_from_ratio,
+    beta_from_redshift,
+    boost_exponent,
+    compose_redshift,
+    deaberrate,
+    doppler_factor,
+    jet_counterjet_ratio,
+    lorentz_factor,
+    redshift,
+    redshift_locus,
+    solve_jet_pair,
+    solve_proper_motions,
+    velocity_readings,
+)
+
+_SUBMODULES = {
+    "kinematics",
+    "lines",
+    "spectra",
+    "models",
+    "measure",
+    "fitting",
+    "batch",
+    "io",
+    "plotting",
+    "widgets",
+    "cli",
+    "demo",
+}
+
+__all__ = [
+    "DegenerateGeometryWarning",
+    "DopplerkitWarning",
+    "FitAtBoundWarning",
+    "MediumWarning",
+    "NearLightSpeedWarning",
+    "UnresolvedLineWarning",
+    "__version__",
+    "aberrate",
+    "apparent_speed",
+    "beaming_factor",
+    "beta_cos_theta_from_ratio",
+    "beta_from_redshift",
+    "boost_exponent",
+    "compose_redshift",
+    "deaberrate",
+    "doppler_factor",
+    "jet_counterjet_ratio",
+    "lorentz_factor",
+    "redshift",
+    "redshift_locus",
+    "solve_jet_pair",
+    "solve_proper_motions",
+    "velocity_readings",
+]
+
+
+def __getattr__(name: str):
+    if name in _SUBMODULES:
+        return importlib.import_module(f"{__name__}.{name}")
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(__all__) | _SUBMODULES)

@@ -1,0 +1,758 @@
+"""Exact special-relativistic kinematics of moving emitters.
+
+Pure formulas on floats and arrays. Quantities are accepted at the edge and
+stripped once; the arithmetic inside runs on plain numpy arrays.
+
+Conventions (used by every function here and in the rest of dopplerkit)
+-----------------------------------------------------------------------
+* ``beta = v/c`` is a speed in [0, 1). Direction is carried by an angle, never by
+  the sign of ``beta``. Every function taking ``beta`` also takes ``gamma=``
+  (the Lorentz factor) instead, which stays exact for speeds extremely close to c.
+* ``theta`` is the viewing angle in the OBSERVER frame: the angle between the
+  source velocity and the direction from the source to the observer.
+  ``theta = 0``: moving straight at us (blueshift); 90 deg: transverse; 180 deg:
+  straight away. ``theta_source`` is the same angle in the comoving frame.
+* ``z = lambda_obs/lambda_emit - 1``; ``z < 0`` is a blueshift.
+  ``delta = nu_obs/nu_emit = 1/(1 + z)``.
+* Radial velocities are positive when receding.
+* Spectral index ``alpha`` with ``S_nu`` proportional to ``nu**-alpha``.
+* Angles accept astropy Quantities in any angle unit; plain numbers are radians.
+  Returned angles are Quantities in degrees; speeds and redshifts are plain
+  floats or arrays.
+* NaN inputs propagate to NaN outputs without an error.
+
+The product ``1 - beta cos theta`` is evaluated as
+``(1 - beta) + 2 beta sin**2(theta/2)`` with ``1 - beta = 1/(Gamma**2 (1 + beta))``
+when the speed comes as ``gamma``, which keeps full precision as beta -> 1 and
+theta -> 0.
+"""
+
+from __future__ import annotations
+
+import warnings
+from typing import Literal
+
+import astropy.units as u
+import numpy as np
+from numpy.typing import ArrayLike
+
+from .exceptions import DegenerateGeometryWarning, NearLightSpeedWarning
+
+__all__ = [
+    "GEOMETRIES",
+    "SPEED_OF_LIGHT_KMS",
+    "aberrate",
+    "apparent_speed",
+    "beaming_factor",
+    "beta_cos_theta_from_ratio",
+    "beta_from_redshift",
+    "boost_exponent",
+    "compose_redshift",
+    "deaberrate",
+    "doppler_factor",
+    "jet_counterjet_ratio",
+    "lorentz_factor",
+    "redshift",
+    "redshift_locus",
+    "solve_jet_pair",
+    "solve_proper_motions",
+    "velocity_readings",
+]
+
+#: Speed of light in km/s (exact, SI definition).
+SPEED_OF_LIGHT_KMS = 299792.458
+
+#: Beaming geometries: name -> (exponent offset added to alpha, description).
+GEOMETRIES = {
+    "blob": (3.0, "discrete blob, S_obs = delta**(3 + alpha) S_emit"),
+    "jet": (2.0, "continuous jet, S_obs = delta**(2 + alpha) S_emit"),
+}
+
+Geometry = Literal["blob", "jet"]
+
+
+# ---------------------------------------------------------------------------
+# Input handling (private, shared by the other modules of the package)
+# ---------------------------------------------------------------------------
+def _out(x):
+    """Return a Python float for 0-d results, an ndarray otherwise."""
+    x = np.asarray(x)
+    return float(x) if x.ndim == 0 else x
+
+
+def _deg(x) -> u.Quantity:
+    """Radians (array) -> Quantity in degrees, 0-d kept as scalar Quantity."""
+    return u.Quantity(np.degrees(x), u.deg)
+
+
+def _describe(value) -> str:
+    arr = np.asarray(getattr(value, "value", value))
+    if arr.ndim == 0:
+        return repr(arr.item())
+    return f"array of shape {arr.shape}"
+
+
+def _first_bad(arr: np.ndarray, bad: np.ndarray) -> str:
+    if arr.ndim == 0:
+        return repr(float(arr))
+    idx = np.unravel_index(np.flatnonzero(bad)[0], arr.shape)
+    idx = idx[0] if len(idx) == 1 else idx
+    return f"{float(arr[idx])!r} at index {idx}"
+
+
+def _to_float_array(value, name: str) -> np.ndarray:
+    if isinstance(value, (str, bytes)) or value is None:
+        raise TypeError(f"{name} must be a number or array of numbers, got {type(value).__name__} {value!r}")
+    try:
+        arr = np.asarray(value, dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise TypeError(f"{name} must be a number or array of numbers, got {type(value).__name__}") from exc
+    return arr
+
+
+def _angle(value, name: str = "theta") -> np.ndarray:
+    """Angle in radians as a float array. Quantities of any angle unit; plain numbers are radians."""
+    if isinstance(value, u.Quantity):
+        try:
+            return np.asarray(value.to_value(u.rad), dtype=float)
+        except u.UnitConversionError as exc:
+            raise u.UnitsError(f"{name} must be an angle (e.g. deg or rad), got unit {value.unit!r} ({_describe(value)})") from exc
+    return _to_float_array(value, name)
+
+
+def _dimensionless(value, name: str) -> np.ndarray:
+    if isinstance(value, u.Quantity):
+        try:
+            return np.asarray(value.to_value(u.dimensionless_unscaled), dtype=float)
+        except u.UnitConversionError as exc:
+            raise u.UnitsError(f"{name} must be dimensionless, got unit {value.unit!r} ({_describe(value)})") from exc
+    return _to_float_array(value, name)
+
+
+def _speed(beta=None, gamma=None, *, name: str = "beta"):
+    """Return (beta, gamma, one_minus_beta) float arrays from exactly one of beta / gamma.
+
+    ``beta`` may be a float, an array, a dimensionless Quantity or a velocity Quantity
+    (divided by c). Values outside [0, 1) raise ValueError; ``gamma`` < 1 raises.
+    NaN passes through.
+    """
+    if (beta is None) == (gamma is None):
+        raise TypeError(f"give the speed as exactly one of {name}= or gamma=, got {name}={beta!r}, gamma={gamma!r}")
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        if gamma is None:
+            if isinstance(beta, u.Quantity) and beta.unit.physical_type == "speed":
+                b = np.asarray(beta.to_value(u.km / u.s), dtype=float) / SPEED_OF_LIGHT_KMS
+            elif isinstance(beta, u.Quantity) and beta.unit.physical_type != "dimensionless":
+                raise u.UnitsError(f"{name} must be dimensionless (v/c) or a speed, got unit {beta.unit!r} ({_describe(beta)})")
+            else:
+                b = _dimensionless(beta, name)
+            bad = (b < 0) | (b >= 1)
+            if bad.any():
+                raise ValueError(
+                    f"{name} must satisfy 0 <= {name} < 1, got {_first_bad(b, bad)}; for speeds very close to c pass gamma= instead"
+                )
+            omb = 1.0 - b
+            opb = 1.0 + b
+            if (omb < 1e-10).any():
+                warnings.warn(
+                    f"{name} is within 1e-10 of 1: a float {name} carries only ~{-np.log10(np.min(omb) / 2.2e-16):.0f} "
+                    "significant digits of 1 - beta; pass the speed as gamma= for exact results",
+                    NearLightSpeedWarning,
+                    stacklevel=3,
+                )
+            g = 1.0 / np.sqrt(omb * opb)
+        else:
+            g = _dimensionless(gamma, "gamma")
+            bad = (g < 1) | np.isinf(g)
+            if bad.any():
+                raise ValueError(f"gamma must satisfy 1 <= gamma < inf, got {_first_bad(g, bad)}")
+            gb = np.sqrt((g - 1.0) * (g + 1.0))  # Gamma * beta, exact near 1 and for large Gamma
+            b = gb / g
+            omb = 1.0 / (g * g * (1.0 + b))
+    return b, g, omb
+
+
+def _one_minus_beta_cos(b, omb, th):
+    """1 - beta cos(theta), cancellation-free: (1 - beta) + 2 beta sin^2(theta/2)."""
+    s = np.sin(0.5 * th)
+    return omb + 2.0 * b * s * s
+
+
+def _geometry_exponent(alpha, geometry, name: str = "geometry") -> np.ndarray:
+    if geometry not in GEOMETRIES:
+        allowed = ", ".join(f"{k!r} ({v[1]})" for k, v in GEOMETRIES.items())
+        raise ValueError(f"{name} must be one of {allowed}; got {geometry!r}")
+    return GEOMETRIES[geometry][0] + _dimensionless(alpha, "alpha")
+
+
+# ---------------------------------------------------------------------------
+# Forward kinematics
+# ---------------------------------------------------------------------------
+def lorentz_factor(beta: ArrayLike | u.Quantity | None = None, *, gamma: ArrayLike | None = None):
+    """Lorentz factor Gamma of a speed.
+
+    Parameters
+    ----------
+    beta : float, array or Quantity
+        Speed v/c in [0, 1) (dimensionless), or a velocity Quantity (divided by c).
+    gamma : float or array, optional
+        The Lorentz factor itself, instead of ``beta`` (returned unchanged after checks).
+
+    Returns
+    -------
+    float or ndarray
+        Gamma = 1/sqrt((1 - beta)(1 + beta)), dimensionless, >= 1.
+
+    Notes
+    -----
+    The product form avoids the cancellation in ``1 - beta**2`` (Rybicki & Lightman 1979, sec. 4.1).
+
+    Examples
+    --------
+    >>> round(lorentz_factor(0.6), 12)
+    1.25
+    """
+    return _out(_speed(beta, gamma)[1])
+
+
+def doppler_factor(beta=None, theta=0.0, *, gamma=None):
+    """Doppler factor delta = nu_obs/nu_emit of a moving emitter.
+
+    Parameters
+    ----------
+    beta : float, array or Quantity
+        Speed v/c in [0, 1), or a velocity Quantity. Alternatively give ``gamma=``.
+    theta : float, array or Quantity
+        Viewing angle in the observer frame between the velocity and the direction from
+        the source to the observer; 0 = moving straight at us, 180 deg = straight away.
+        Plain numbers are radians.
+    gamma : float or array, optional
+        Lorentz factor instead of ``beta`` (exact for speeds extremely close to c).
+
+    Returns
+    -------
+    float or ndarray
+        delta = 1/(Gamma (1 - beta cos theta)), dimensionless. delta > 1 boosts.
+
+    Notes
+    -----
+    Evaluated as ``1/(Gamma ((1 - beta) + 2 beta sin**2(theta/2)))``, which has no
+    cancellation for beta -> 1, theta -> 0 (Rybicki & Lightman 1979, sec. 4.1;
+    Urry & Padovani 1995, PASP 107, 803, app. A). NaN propagates.
+
+    Examples
+    --------
+    >>> round(doppler_factor(0.6, 0.0), 12)
+    2.0
+    """
+    b, g, omb = _speed(beta, gamma)
+    th = _angle(theta, "theta")
+    with np.errstate(invalid="ignore"):
+        return _out(1.0 / (g * _one_minus_beta_cos(b, omb, th)))
+
+
+def redshift(beta=None, theta=0.0, *, gamma=None):
+    """Kinematic redshift z = lambda_obs/lambda_emit - 1 of a moving emitter.
+
+    Parameters
+    ----------
+    beta : float, array or Quantity
+        Speed v/c in [0, 1). Alternatively ``gamma=``.
+    theta : float, array or Quantity
+        Observer-frame viewing angle; 0 = straight at us (blueshift), 90 deg = transverse
+        (redshift Gamma - 1), 180 deg = straight away. Plain numbers are radians.
+    gamma : float or array, optional
+        Lorentz factor instead of ``beta``.
+
+    Returns
+    -------
+    float or ndarray
+        z = Gamma (1 - beta cos theta) - 1 (negative = blueshift), dimensionless.
+
+    Notes
+    -----
+    Evaluated as ``z = Gamma beta B`` with the bracket B chosen to avoid cancellation:
+    ``B = Gamma beta/(Gamma + 1) - cos theta`` for cos theta <= 1/2, and
+    ``B = 2 sin^2(theta/2) - (1 + 1/(Gamma (1 + beta)))/(Gamma + 1)`` for cos theta > 1/2
+    (both equal Gamma (1 - beta cos theta) - 1 divided by Gamma beta). Small z keeps its
+    relative precision and large Gamma near theta = 0 loses nothing; only the inherent
+    loss near the zero crossing remains.
+    """
+    b, g, _ = _speed(beta, gamma)
+    th = _angle(theta, "theta")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        gb = g * b
+        c = np.cos(th)
+        s = np.sin(0.5 * th)
+        near = 2.0 * s * s - (1.0 + 1.0 / (g + gb)) / (g + 1.0)
+        far = gb / (g + 1.0) - c
+        z = gb * np.where(c > 0.5, near, far)
+    return _out(z)
+
+
+def beta_from_redshift(z: ArrayLike):
+    """Relativistic radial (line-of-sight) speed for a redshift, positive receding.
+
+    Parameters
+    ----------
+    z : float or array
+        Redshift (> -1), dimensionless.
+
+    Returns
+    -------
+    float or ndarray
+        beta_r = ((1+z)**2 - 1)/((1+z)**2 + 1) in (-1, 1); positive = receding.
+
+    Notes
+    -----
+    This is astropy's relativistic Doppler convention (``u.doppler_relativistic``,
+    ``doppler_redshift``): the speed of a source moving purely along the line of sight
+    (theta = 0 or 180 deg). Written as z (2 + z)/((1 + z)**2 + 1) to keep small z exact.
+    """
+    zz = _dimensionless(z, "z")
+    bad = zz <= -1
+    if bad.any():
+        raise ValueError(f"z must be > -1, got {_first_bad(zz, bad)}")
+    with np.errstate(invalid="ignore"):
+        w = 1.0 + zz
+        return _out(zz * (2.0 + zz) / (w * w + 1.0))
+
+
+def aberrate(theta_source, beta=None, *, gamma=None) -> u.Quantity:
+    """Observer-frame angle of a direction given in the source (comoving) frame.
+
+    Parameters
+    ----------
+    theta_source : float, array or Quantity
+        Angle in the comoving frame between the velocity and the photon direction
+        towards the observer; 0 = forward. Plain numbers are radians.
+    beta : float, array or Quantity
+        Speed v/c in [0, 1). Alternatively ``gamma=``.
+
+    Returns
+    -------
+    Quantity (deg)
+        Observer-frame angle theta, from tan(theta/2) = sqrt((1-beta)/(1+beta)) tan(theta'/2)
+        (Rybicki & Lightman 1979, sec. 4.1). Forward-concentrated for beta > 0.
+    """
+    b, g, _ = _speed(beta, gamma)
+    th = _angle(theta_source, "theta_source")
+    k = 1.0 / (g * (1.0 + b))  # sqrt((1 - beta)/(1 + beta)), exact near c
+    with np.errstate(invalid="ignore"):
+        out = 2.0 * np.arctan2(k * np.sin(0.5 * th), np.cos(0.5 * th))
+    return _deg(out)
+
+
+def deaberrate(theta_observer, beta=None, *, gamma=None) -> u.Quantity:
+    """Source-frame angle of a direction given in the observer frame (inverse of :func:`aberrate`).
+
+    Parameters
+    ----------
+    theta_observer : float, array or Quantity
+        Observer-frame viewing angle (0 = straight at us). Plain numbers are radians.
+    beta : float, array or Quantity
+        Speed v/c in [0, 1). Alternatively ``gamma=``.
+
+    Returns
+    -------
+    Quantity (deg)
+        theta' from tan(theta'/2) = sqrt((1+beta)/(1-beta)) tan(theta/2).
+    """
+    b, g, _ = _speed(beta, gamma)
+    th = _angle(theta_observer, "theta_observer")
+    k = g * (1.0 + b)  # sqrt((1 + beta)/(1 - beta))
+    with np.errstate(invalid="ignore"):
+        out = 2.0 * np.arctan2(k * np.sin(0.5 * th), np.cos(0.5 * th))
+    return _deg(out)
+
+
+def apparent_speed(beta=None, theta=0.0, *, gamma=None):
+    """Apparent transverse speed on the sky, in units of c.
+
+    Parameters
+    ----------
+    beta : float, array or Quantity
+        Speed v/c in [0, 1). Alternatively ``gamma=``.
+    theta : float, array or Quantity
+        Observer-frame viewing angle (0 = straight at us). Plain numbers are radians.
+
+    Returns
+    -------
+    float or ndarray
+        beta_app = beta sin theta/(1 - beta cos theta), dimensionless; its maximum over
+        theta is Gamma beta at cos theta = beta (Rees 1966, Nature 211, 468).
+    """
+    b, _, omb = _speed(beta, gamma)
+    th = _angle(theta, "theta")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return _out(b * np.sin(th) / _one_minus_beta_cos(b, omb, th))
+
+
+def compose_redshift(*z: ArrayLike):
+    """Compose redshifts multiplicatively: (1 + z_total) = prod (1 + z_i).
+
+    Parameters
+    ----------
+    *z : float or array
+        Redshifts to compose (e.g. the host's cosmological z and a kinematic z), each > -1.
+
+    Returns
+    -------
+    float or ndarray
+        z_total, evaluated as expm1(sum log1p(z_i)) to keep small totals exact.
+
+    Notes
+    -----
+    Redshifts never add; a velocity measured against a host must be composed this way
+    (common practice, no source; see e.g. Davis & Lineweaver 2004 for the cosmological factor).
+    """
+    if not z:
+        raise TypeError("compose_redshift needs at least one redshift")
+    total = 0.0
+    for i, zi in enumerate(z):
+        arr = _dimensionless(zi, f"z[{i}]")
+        bad = arr <= -1
+        if bad.any():
+            raise ValueError(f"z[{i}] must be > -1, got {_first_bad(arr, bad)}")
+        total = total + np.log1p(arr)
+    return _out(np.expm1(total))
+
+
+def boost_exponent(alpha: ArrayLike = 0.0, geometry: Geometry = "blob"):
+    """Exponent p of delta in the flux boost: 3 + alpha (blob) or 2 + alpha (jet).
+
+    Parameters
+    ----------
+    alpha : float or array
+        Spectral index, S_nu proportional to nu**-alpha.
+    geometry : {"blob", "jet"}
+        Discrete blob or continuous (steady) jet (Lind & Blandford 1985, ApJ 295, 358).
+    """
+    return _out(_geometry_exponent(alpha, geometry))
+
+
+def beaming_factor(beta=None, theta=0.0, alpha: ArrayLike = 0.0, geometry: Geometry = "blob", *, gamma=None):
+    """Flux boost S_obs(nu)/S_emit(nu) = delta**p at fixed observed frequency.
+
+    Parameters
+    ----------
+    beta : float, array or Quantity
+        Speed v/c in [0, 1). Alternatively ``gamma=``.
+    theta : float, array or Quantity
+        Observer-frame viewing angle (0 = straight at us). Plain numbers are radians.
+    alpha : float or array
+        Spectral index, S_nu proportional to nu**-alpha.
+    geometry : {"blob", "jet"}
+        "blob": p = 3 + alpha (discrete component); "jet": p = 2 + alpha (continuous jet).
+
+    Returns
+    -------
+    float or ndarray
+        delta**p, dimensionless (Lind & Blandford 1985; Urry & Padovani 1995, app. A).
+    """
+    p = _geometry_exponent(alpha, geometry)
+    d = doppler_factor(beta, theta, gamma=gamma)
+    return _out(np.power(d, p))
+
+
+def jet_counterjet_ratio(beta=None, theta=0.0, alpha: ArrayLike = 0.0, geometry: Geometry = "blob", *, gamma=None):
+    """Flux ratio of the approaching to the receding jet, R = ((1 + beta cos theta)/(1 - beta cos theta))**p.
+
+    Parameters
+    ----------
+    beta : float, array or Quantity
+        Speed v/c of both jets in [0, 1). Alternatively ``gamma=``.
+    theta : float, array or Quantity
+        Observer-frame viewing angle of the approaching jet (0 = straight at us).
+    alpha : float or array
+        Spectral index, S_nu proportional to nu**-alpha.
+    geometry : {"blob", "jet"}
+        p = 3 + alpha (blob) or 2 + alpha (continuous jet).
+
+    Returns
+    -------
+    float or ndarray
+        R >= 1 for theta < 90 deg (Lind & Blandford 1985; Miller-Jones, Blundell & Duffy 2004,
+        ApJ 603, L21). Compare knots at equal separation, not equal time, when measuring R.
+    """
+    p = _geometry_exponent(alpha, geometry)
+    b, _, omb = _speed(beta, gamma)
+    th = _angle(theta, "theta")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        d_app = _one_minus_beta_cos(b, omb, th)
+        d_rec = _one_minus_beta_cos(b, omb, np.pi - th)
+        return _out(np.power(d_rec / d_app, p))
+
+
+# ---------------------------------------------------------------------------
+# Inverse problems
+# ---------------------------------------------------------------------------
+def solve_jet_pair(z_approaching, z_receding, *, on_unphysical: Literal["raise", "nan"] = "raise"):
+    """Speed and viewing angle of two opposite jets of equal speed from their redshifts.
+
+    Parameters
+    ----------
+    z_approaching, z_receding : float or array
+        Redshifts of the approaching and the receding jet (dimensionless, > -1).
+    on_unphysical : {"raise", "nan"}
+        What to do with pairs that no equal-speed opposite jets can produce,
+        (1 + z_a)(1 + z_r) < 1: raise ValueError (default) or return NaN for them.
+
+    Returns
+    -------
+    beta : float or ndarray
+        Speed v/c. Gamma = (2 + z_a + z_r)/2.
+    theta : Quantity (deg)
+        Observer-frame viewing angle of the approaching jet, 0 = straight at us; the
+        receding jet is at 180 deg - theta. theta > 90 deg if z_a > z_r.
+
+    Notes
+    -----
+    1 + z_a = Gamma (1 - beta cos theta), 1 + z_r = Gamma (1 + beta cos theta), so
+    Gamma = (2 + z_a + z_r)/2 and beta cos theta = (z_r - z_a)/(2 + z_a + z_r)
+    (follows from Rybicki & Lightman 1979, sec. 4.1; used by Margon 1984, ARA&A 22, 507).
+    The mean redshift (z_a + z_r)/2 = Gamma - 1 is the transverse Doppler shift.
+    When beta is 0 the angle is undetermined (NaN, with a DegenerateGeometryWarning).
+    """
+    if on_unphysical not in ("raise", "nan"):
+        raise ValueError(f"on_unphysical must be 'raise' or 'nan', got {on_unphysical!r}")
+    za = _dimensionless(z_approaching, "z_approaching")
+    zr = _dimensionless(z_receding, "z_receding")
+    za, zr = np.broadcast_arrays(za, zr)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        prod = (1.0 + za) * (1.0 + zr)
+        # (1+z_a)(1+z_r) - 1 computed without cancellation
+        prod_m1 = za + zr + za * zr
+        bad = (prod_m1 < 0) | (za <= -1) | (zr <= -1)
+        if bad.any() and on_unphysical == "raise":
+            i = np.flatnonzero(bad.ravel())[0]
+            where = "" if za.ndim == 0 else f" at index {np.unravel_index(i, za.shape)}"
+            raise ValueError(
+                "unphysical jet pair: equal-speed opposite jets need (1 + z_approaching)(1 + z_receding) >= 1, "
+                f"got z_approaching={za.ravel()[i]!r}, z_receding={zr.ravel()[i]!r}, product {prod.ravel()[i]!r}{where}"
+            )
+        s = 2.0 + za + zr
+        g = 0.5 * s
+        gm1 = 0.5 * (za + zr)
+        gb = np.sqrt(gm1 * (g + 1.0))  # Gamma*beta
+        b = gb / g
+        bcos = (zr - za) / s
+        cos_t = np.clip(bcos / b, -1.0, 1.0)
+        theta = np.arccos(cos_t)
+        b = np.where(bad, np.nan, b)
+        theta = np.where(bad | (b == 0), np.nan, theta)
+    if np.any(b == 0):
+        warnings.warn(
+            "beta = 0 for a jet pair with z_a = z_r = 0: the viewing angle is undetermined (NaN)", DegenerateGeometryWarning, stacklevel=2
+        )
+    return _out(b), _deg(theta)
+
+
+def solve_proper_motions(mu_approaching: u.Quantity, mu_receding: u.Quantity, distance: u.Quantity):
+    """Speed and viewing angle from the proper motions of a two-sided ejection.
+
+    Parameters
+    ----------
+    mu_approaching, mu_receding : Quantity (angle/time)
+        Proper motions of the approaching and the receding component, any angular-rate
+        unit (e.g. mas/d, mas/yr).
+    distance : Quantity (length)
+        Distance to the source, any length unit.
+
+    Returns
+    -------
+    beta : float or ndarray
+        Speed v/c of both components.
+    theta : Quantity (deg)
+        Observer-frame viewing angle of the approaching component (0 = straight at us).
+
+    Raises
+    ------
+    ValueError
+        If mu_receding > mu_approaching or the distance exceeds D_max = c/sqrt(mu_a mu_r),
+        beyond which the components would move faster than light.
+
+    Notes
+    -----
+    mu_{a,r} = beta sin(theta) c/(D (1 -/+ beta cos theta)); hence
+    beta cos theta = (mu_a - mu_r)/(mu_a + mu_r) and tan theta = (2D/c) mu_a mu_r/(mu_a - mu_r)
+    (Mirabel & Rodriguez 1994, Nature 371, 46; 1999, ARA&A 37, 409).
+    """
+    for name, q, ptype in (
+        ("mu_approaching", mu_approaching, "angular speed"),
+        ("mu_receding", mu_receding, "angular speed"),
+        ("distance", distance, "length"),
+    ):
+        if not isinstance(q, u.Quantity):
+            raise TypeError(f"{name} must be an astropy Quantity with a unit of {ptype}, got {type(q).__name__} {q!r}")
+    try:
+        ma = np.asarray(mu_approaching.to_value(u.rad / u.s), dtype=float)
+        mr = np.asarray(mu_receding.to_value(u.rad / u.s), dtype=float)
+    except u.UnitConversionError as exc:
+        raise u.UnitsError(
+            f"mu_approaching and mu_receding must be angular rates (e.g. mas/d), got {mu_approaching.unit!r} and {mu_receding.unit!r}"
+        ) from exc
+    try:
+        d = np.asarray(distance.to_value(u.km), dtype=float)
+    except u.UnitConversionError as exc:
+        raise u.UnitsError(f"distance must be a length (e.g. kpc), got unit {distance.unit!r}") from exc
+    ma, mr, d = np.broadcast_arrays(ma, mr, d)
+    bad = (ma <= 0) | (mr <= 0) | (d <= 0)
+    if bad.any():
+        raise ValueError("mu_approaching, mu_receding and distance must be > 0")
+    bad = mr > ma
+    if bad.any():
+        raise ValueError(f"mu_receding must not exceed mu_approaching, got mu_receding {_first_bad(mr, bad)} rad/s > mu_approaching")
+    x = d / SPEED_OF_LIGHT_KMS  # D/c in s
+    with np.errstate(invalid="ignore", divide="ignore"):
+        bcos = (ma - mr) / (ma + mr)
+        bsin = ma * x * (1.0 - bcos)
+        b = np.hypot(bcos, bsin)
+        theta = np.arctan2(2.0 * x * ma * mr, ma - mr)
+    bad = b >= 1
+    if bad.any():
+        dmax = (SPEED_OF_LIGHT_KMS / np.sqrt(ma * mr)) * u.km
+        i = np.flatnonzero(bad.ravel())[0]
+        raise ValueError(
+            f"distance {distance.ravel()[i] if distance.ndim else distance:.4g} exceeds the maximum distance "
+            f"D_max = c/sqrt(mu_a mu_r) = {dmax.ravel()[i].to(u.kpc):.4g} for these proper motions (beta would be >= 1)"
+        )
+    return _out(b), _deg(theta)
+
+
+def beta_cos_theta_from_ratio(ratio: ArrayLike, alpha: ArrayLike = 0.0, geometry: Geometry = "blob"):
+    """beta cos(theta) from a jet/counter-jet flux ratio.
+
+    Parameters
+    ----------
+    ratio : float or array
+        Flux ratio R of the approaching to the receding jet (> 0), measured at equal
+        distances from the core.
+    alpha : float or array
+        Spectral index, S_nu proportional to nu**-alpha.
+    geometry : {"blob", "jet"}
+        p = 3 + alpha (blob) or 2 + alpha (continuous jet).
+
+    Returns
+    -------
+    float or ndarray
+        beta cos theta = (R**(1/p) - 1)/(R**(1/p) + 1) = tanh(ln R/(2p)), in (-1, 1)
+        (Lind & Blandford 1985; Miller-Jones, Blundell & Duffy 2004, ApJ 603, L21).
+        The value is a lower limit on beta and an upper limit on cos theta.
+    """
+    p = _geometry_exponent(alpha, geometry)
+    r = _dimensionless(ratio, "ratio")
+    bad = r <= 0
+    if bad.any():
+        raise ValueError(f"ratio must be > 0, got {_first_bad(r, bad)}")
+    return _out(np.tanh(np.log(r) / (2.0 * p)))
+
+
+def redshift_locus(z: ArrayLike, theta=None, *, num: int = 721):
+    """The (beta, theta) pairs that produce a measured redshift: a curve in the constraint plane.
+
+    Parameters
+    ----------
+    z : float or array
+        Measured kinematic redshift (> -1).
+    theta : Quantity or array, optional
+        Observer-frame viewing angles at which to evaluate (0 = straight at us; plain
+        numbers are radians). Default: ``num`` points from 0 to 180 deg.
+    num : int
+        Number of grid points when ``theta`` is not given.
+
+    Returns
+    -------
+    theta : Quantity (deg)
+        The angle grid, broadcast against ``z``.
+    beta : ndarray, shape (2, ...)
+        Speeds on the two branches (slower root first, faster root second) that give ``z``
+        at each angle; NaN where a branch does not exist. A redshift (z > 0) has one branch
+        (the second is NaN); a blueshift has two for sin(theta) <= 1 + z and none beyond.
+
+    Notes
+    -----
+    Solves Gamma (1 - beta cos theta) = w = 1 + z:
+    beta = (cos theta -/+ w sqrt(cos^2 theta + w^2 - 1))/(cos^2 theta + w^2), keeping roots in [0, 1).
+    """
+    zz = _dimensionless(z, "z")
+    if np.any(zz <= -1):
+        raise ValueError("z must be > -1")
+    if theta is None:
+        th = np.linspace(0.0, np.pi, int(num))
+        if zz.ndim:
+            zz = zz[..., None]
+    else:
+        th = _angle(theta, "theta")
+    zz, th = np.broadcast_arrays(zz, th)
+    w = 1.0 + zz
+    c = np.cos(th)
+    with np.errstate(invalid="ignore"):
+        den = c * c + w * w
+        disc = np.sqrt(c * c + zz * (2.0 + zz))  # c^2 + w^2 - 1 without cancellation
+        lo = (c - w * disc) / den
+        hi = (c + w * disc) / den
+    lo = np.where((lo >= 0) & (lo < 1), lo, np.nan)
+    hi = np.where((hi >= 0) & (hi < 1), hi, np.nan)
+    # a repeated root counts once
+    lo = np.where(lo == hi, np.nan, lo)
+    return _deg(th), np.stack([lo, hi])
+
+
+def velocity_readings(z: ArrayLike):
+    """Compare the common readings of a redshift as a velocity, side by side.
+
+    Parameters
+    ----------
+    z : float or array
+        Measured redshift (> -1), dimensionless, already corrected for the host's
+        cosmological redshift if a peculiar/kinematic velocity is wanted.
+
+    Returns
+    -------
+    astropy.table.QTable
+        One row per z with columns
+
+        ``z``; ``cz`` (km/s, the optical convention v = c z);
+        ``v_radio`` (km/s, the radio convention v = c z/(1 + z));
+        ``v_relativistic`` (km/s, radial speed from beta = ((1+z)^2-1)/((1+z)^2+1));
+        ``beta_radial`` (relativistic radial v/c);
+        ``beta_transverse_floor`` (the smallest beta that gives z at theta = 90 deg,
+        sqrt(1 - 1/(1+z)^2); NaN for blueshifts, which a transverse motion cannot give);
+        ``cz_error`` and ``radio_error`` (fractional offsets of the linear readings from the
+        relativistic one, (v - v_rel)/|v_rel|).
+
+    Notes
+    -----
+    The conventions are those of astropy's ``doppler_optical``, ``doppler_radio`` and
+    ``doppler_relativistic`` equivalencies (common practice).
+    """
+    from astropy.table import QTable
+
+    zz = np.atleast_1d(_dimensionless(z, "z"))
+    bad = zz <= -1
+    if bad.any():
+        raise ValueError(f"z must be > -1, got {_first_bad(zz, bad)}")
+    c = SPEED_OF_LIGHT_KMS
+    br = np.atleast_1d(beta_from_redshift(zz))
+    w = 1.0 + zz
+    with np.errstate(invalid="ignore", divide="ignore"):
+        floor = np.where(zz >= 0, np.sqrt(zz * (2.0 + zz)) / w, np.nan)
+        cz = c * zz
+        vr = c * zz / w
+        vrel = c * br
+        err_cz = np.where(vrel != 0, (cz - vrel) / np.abs(vrel), 0.0)
+        err_radio = np.where(vrel != 0, (vr - vrel) / np.abs(vrel), 0.0)
+    kms = u.km / u.s
+    return QTable(
+        {
+            "z": zz,
+            "cz": cz * kms,
+            "v_radio": vr * kms,
+            "v_relativistic": vrel * kms,
+            "beta_radial": br,
+            "beta_transverse_floor": floor,
+            "cz_error": err_cz,
+            "radio_error": err_radio,
+        }
+    )
