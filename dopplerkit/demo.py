@@ -1,22 +1,254 @@
-"""The main job on the bundled demo data (``dopplerkit demo`` / ``make demo``).
+"""Invented demo scenarios: their generator (``python -m dopplerkit.demo``) and the demo run.
 
-The demo scenarios are invented sources with invented parameters (see
-``data_demo/README.md``); nothing here is a real object's data.
+Every source, name and parameter here is invented for the demo; nothing is a real
+object's data. The generator is deterministic (fixed seeds), so the committed files in
+``data_demo/`` can be regenerated bit for bit with ``python -m dopplerkit.demo --generate``.
+
+Scenarios
+---------
+``binary_dkx1/``   the invented precessing-jet X-ray binary "DKX-1": 64 optical epochs with
+                   H-alpha and He I 5876 from both jets (FITS in ``fits/``, ECSV in ``ecsv/``),
+                   ``truth.toml`` with the model parameters and ``epochs.ecsv`` with true shifts.
+``quasar_dkq7/``   the invented quasar "DKQ-7" at z = 1.184 with an ultra-fast outflow seen as
+                   blueshifted Fe XXV He-alpha and Fe XXVI Ly-alpha absorption, 2-10 keV.
+``survey/``        200 single-epoch spectra of invented jet sources (one H-alpha jet pair each)
+                   plus deliberately bad files, ``truth.ecsv`` and ``config.toml`` for batch fits.
 """
 
 from __future__ import annotations
 
+import argparse
 import sys
 from pathlib import Path
 
-EXIT_OK = 0
+import astropy.units as u
+import numpy as np
 
-#: Invented jet pair of the demo binary "DKX-1" at one epoch (see data_demo/README.md).
+EXIT_OK = 0
+EXIT_SOME_FAILED = 1
+
+#: The invented precessing binary DKX-1 (not any real system).
+BINARY = {
+    "name": "DKX-1",
+    "beta": 0.2400,
+    "inclination_deg": 68.0,
+    "cone_angle_deg": 23.0,
+    "period_d": 121.7,
+    "t0_mjd": 60012.3,
+    "n_epochs": 64,
+    "seed": 20261202,
+}
+
+#: The invented quasar DKQ-7 with an ultra-fast outflow along the line of sight.
+QUASAR = {"name": "DKQ-7", "z_cosmo": 1.184, "beta_outflow": 0.23, "seed": 7}
+
+#: The invented survey of jet sources.
+SURVEY = {"n": 200, "seed": 4242, "beta_range": (0.05, 0.30), "angle_range_deg": (15.0, 85.0)}
+
+#: Invented jet pair used by the quick-look calculator part of the demo.
 DEMO_JET = {"beta": 0.26, "angle_deg": 79.0}
 
 
+def default_data_dir() -> Path:
+    """``data_demo/`` of the source tree (the demo data live beside the package)."""
+    return Path(__file__).resolve().parent.parent / "data_demo"
+
+
+# ---------------------------------------------------------------------------
+# Generator
+# ---------------------------------------------------------------------------
+def _binary(outdir: Path) -> None:
+    from .io import write_spectrum, write_table
+    from .models import LineComponent, precessing_jet_redshifts, synthesize_spectrum
+
+    b = BINARY
+    rng = np.random.default_rng(b["seed"])
+    d = outdir / "binary_dkx1"
+    (d / "fits").mkdir(parents=True, exist_ok=True)
+    (d / "ecsv").mkdir(parents=True, exist_ok=True)
+    t = np.sort(b["t0_mjd"] - 40.0 + rng.uniform(0.0, 300.0, b["n_epochs"]))
+    z1, z2 = precessing_jet_redshifts(t, b["beta"], b["inclination_deg"] * u.deg, b["cone_angle_deg"] * u.deg, b["period_d"], b["t0_mjd"])
+    grid = np.arange(5000.0, 8300.0, 2.2) * u.AA
+    snr = rng.uniform(25.0, 60.0, t.size)
+    from astropy.table import Table
+
+    for k in range(t.size):
+        comps = []
+        for zz, lab in ((z1[k], "jet1"), (z2[k], "jet2")):
+            comps.append(LineComponent("H-alpha", z=float(zz), fwhm=900 * u.km / u.s, strength=2.2, label=lab))
+            comps.append(LineComponent("He I 5876", z=float(zz), fwhm=900 * u.km / u.s, strength=0.9, label=lab))
+        spec = synthesize_spectrum(
+            grid,
+            comps,
+            continuum={"kind": "powerlaw", "amplitude": 2.0e-15, "index": -1.2, "pivot": 6500 * u.AA},
+            resolution=3000,
+            snr=float(snr[k]),
+            seed=rng,
+            medium="vacuum",
+            meta={"OBJECT": b["name"], "MJD-OBS": float(t[k])},
+        )
+        spec.meta.pop("dopplerkit_truth")
+        write_spectrum(spec, d / "fits" / f"dkx1_{k:03d}.fits")
+        write_spectrum(spec, d / "ecsv" / f"dkx1_{k:03d}.ecsv")
+    ep = Table({"file": [f"dkx1_{k:03d}" for k in range(t.size)], "mjd": t, "z_jet1": z1, "z_jet2": z2, "snr": snr})
+    ep.meta["comment"] = ["True (noise-free) redshifts of the invented binary DKX-1."]
+    write_table(ep, d / "epochs.ecsv")
+    truth = "\n".join(
+        [
+            "# Invented precessing-jet binary DKX-1: the parameters the demo spectra were made with.",
+            f'name = "{b["name"]}"',
+            f"beta = {b['beta']}",
+            f"inclination_deg = {b['inclination_deg']}",
+            f"cone_angle_deg = {b['cone_angle_deg']}",
+            f"period_d = {b['period_d']}",
+            f"t0_mjd = {b['t0_mjd']}",
+            f"seed = {b['seed']}",
+            "",
+        ]
+    )
+    (d / "truth.toml").write_text(truth)
+
+
+def _quasar(outdir: Path) -> None:
+    from .io import write_spectrum
+    from .kinematics import compose_redshift, redshift
+    from .models import LineComponent, synthesize_spectrum
+
+    q = QUASAR
+    d = outdir / "quasar_dkq7"
+    d.mkdir(parents=True, exist_ok=True)
+    z_out = redshift(q["beta_outflow"], 0.0)  # straight at us
+    z_tot = compose_redshift(q["z_cosmo"], z_out)
+    grid = np.arange(2.0, 10.0, 0.002) * u.keV
+    comps = [
+        LineComponent("Fe XXV He-alpha w", z=float(z_tot), fwhm=4000 * u.km / u.s, strength=-0.35, label="outflow"),
+        LineComponent("Fe XXVI Ly-alpha", z=float(z_tot), fwhm=4000 * u.km / u.s, strength=-0.30, label="outflow"),
+        LineComponent("Fe I K-alpha", z=float(q["z_cosmo"]), fwhm=2000 * u.km / u.s, strength=0.25, label="host"),
+    ]
+    spec = synthesize_spectrum(
+        grid,
+        comps,
+        continuum={"kind": "powerlaw", "amplitude": 2.0e-3, "index": -1.9, "pivot": 5 * u.keV},
+        flux_unit="ph / (s cm2 keV)",
+        resolution=1200,
+        snr=40,
+        seed=q["seed"],
+        meta={"OBJECT": q["name"]},
+    )
+    spec.meta.pop("dopplerkit_truth")
+    write_spectrum(spec, d / "dkq7_xray.fits")
+    write_spectrum(spec, d / "dkq7_xray.ecsv")
+    (d / "truth.toml").write_text(
+        "# Invented quasar DKQ-7 with an ultra-fast outflow seen along the line of sight.\n"
+        f'name = "{q["name"]}"\nz_cosmo = {q["z_cosmo"]}\nbeta_outflow = {q["beta_outflow"]}\n'
+        f"viewing_angle_deg = 0.0\nz_outflow_kinematic = {z_out:.10f}\nz_total = {z_tot:.10f}\n"
+    )
+
+
+SURVEY_CONFIG = """\
+# Batch fit of the invented survey: one H-alpha jet pair per spectrum.
+[[line]]
+name = "H-alpha"
+components = 2
+
+[kinematics]
+model = "jet-pair"
+
+[spectra]
+medium = "vacuum"
+"""
+
+
+def _survey(outdir: Path) -> None:
+    from astropy.table import Table
+
+    from .io import write_spectrum, write_table
+    from .kinematics import redshift
+    from .models import LineComponent, synthesize_spectrum
+
+    s = SURVEY
+    rng = np.random.default_rng(s["seed"])
+    d = outdir / "survey"
+    (d / "spectra").mkdir(parents=True, exist_ok=True)
+    n = s["n"]
+    beta = rng.uniform(*s["beta_range"], n)
+    ang = np.degrees(np.arccos(rng.uniform(np.cos(np.radians(s["angle_range_deg"][1])), np.cos(np.radians(s["angle_range_deg"][0])), n)))
+    za = redshift(beta, ang * u.deg)
+    zr = redshift(beta, (180.0 - ang) * u.deg)
+    fwhm = rng.uniform(300.0, 1500.0, n)
+    snr = rng.uniform(15.0, 60.0, n)
+    grid = np.arange(4800.0, 9000.0, 3.0) * u.AA
+    files = []
+    for k in range(n):
+        comps = [
+            LineComponent("H-alpha", z=float(za[k]), fwhm=fwhm[k] * u.km / u.s, strength=float(rng.uniform(1.5, 3.0)), label="approaching"),
+            LineComponent("H-alpha", z=float(zr[k]), fwhm=fwhm[k] * u.km / u.s, strength=float(rng.uniform(0.8, 2.0)), label="receding"),
+        ]
+        spec = synthesize_spectrum(
+            grid,
+            comps,
+            continuum=1.0e-16,
+            resolution=2500,
+            snr=float(snr[k]),
+            seed=rng,
+            medium="vacuum",
+            meta={"OBJECT": f"DKJ-{k + 1:03d}"},
+        )
+        spec.meta.pop("dopplerkit_truth")
+        if k % 20 == 19:
+            name = f"dkj_{k + 1:03d}.ecsv"
+        elif k % 20 == 9:
+            name = f"dkj_{k + 1:03d}.fits"
+            write_spectrum(spec, d / "spectra" / name, layout="wcs1d-fits")
+            files.append(name)
+            continue
+        else:
+            name = f"dkj_{k + 1:03d}.fits"
+        write_spectrum(spec, d / "spectra" / name)
+        files.append(name)
+    truth = Table(
+        {
+            "file": files,
+            "beta": beta,
+            "viewing_angle": ang * u.deg,
+            "z_approaching": za,
+            "z_receding": zr,
+            "fwhm": fwhm * u.km / u.s,
+            "snr": snr,
+        }
+    )
+    truth.meta["comment"] = ["Invented jet sources: the true parameters of each demo spectrum."]
+    write_table(truth, d / "truth.ecsv")
+    # deliberately bad files: each must give an error row, never stop the batch
+    bad = d / "spectra" / "bad"
+    bad.mkdir(exist_ok=True)
+    (bad / "empty.fits").write_bytes(b"")
+    whole = (d / "spectra" / files[0]).read_bytes()
+    (bad / "truncated.fits").write_bytes(whole[: len(whole) // 2])
+    t = Table({"wavelength": grid, "flux": np.full(grid.size, np.nan) * u.Unit("erg / (s cm2 Angstrom)")})
+    t.write(bad / "nan_only.ecsv", format="ascii.ecsv", overwrite=True)
+    t = Table({"wavelength": grid.value * u.kg, "flux": np.ones(grid.size) * u.Unit("erg / (s cm2 Angstrom)")})
+    t.write(bad / "wrong_units.ecsv", format="ascii.ecsv", overwrite=True)
+    (bad / "single_pixel.csv").write_text("wavelength,flux,error\n6563.0,1.0,0.1\n")
+    (bad / "not_a_spectrum.txt").write_text("this file holds no spectrum\n")
+    (d / "config.toml").write_text(SURVEY_CONFIG)
+
+
+def generate(outdir: str | Path | None = None) -> Path:
+    """Regenerate every demo scenario into ``outdir`` (default: the source tree's data_demo/)."""
+    out = Path(outdir) if outdir is not None else default_data_dir()
+    out.mkdir(parents=True, exist_ok=True)
+    _binary(out)
+    _quasar(out)
+    _survey(out)
+    return out
+
+
+# ---------------------------------------------------------------------------
+# The demo run
+# ---------------------------------------------------------------------------
 def run_demo(output_dir: str | Path = "results", workers: int | None = None, out=None) -> int:
-    """Run the demo: kinematics of the invented demo jet, then its solution from the redshift pair."""
+    """Run the main job on the demo data: a quick kinematics read-out, then the survey batch fit."""
     import astropy.units as u
 
     from . import kinematics as k
@@ -30,3 +262,20 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
     print(f"  z approaching = {za:+.5f}, z receding = {zr:+.5f}, mean = Gamma - 1 = {0.5 * (za + zr):.5f}", file=out)
     print(f"  solved back: beta = {b_fit:.6f}, viewing angle = {th_fit:.4f}", file=out)
     return EXIT_OK
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(prog="python -m dopplerkit.demo", description="Regenerate the invented demo data (fixed seeds).")
+    p.add_argument("--generate", action="store_true", help="write the demo scenarios")
+    p.add_argument("--output", default=None, help="target directory (default: data_demo/ of the source tree)")
+    args = p.parse_args(argv)
+    if args.generate:
+        where = generate(args.output)
+        print(f"demo data written to {where}")
+        return EXIT_OK
+    p.print_help()
+    return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())

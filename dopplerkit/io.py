@@ -1,0 +1,429 @@
+"""Reading and writing 1-D spectra and result tables.
+
+Formats (``FORMATS``), chosen once per directory and passed explicitly to the reader:
+
+``tabular-fits``  FITS binary table in HDU 1 (columns as below), read with specutils;
+``wcs1d-fits``    FITS image with a linear 1-D WCS, read with specutils;
+``ecsv``          astropy ECSV table;
+``ascii``         plain text or CSV with a header line.
+
+Table columns are found by name, case-insensitively: the axis is ``wavelength``,
+``frequency`` or ``energy`` (also ``wave``, ``lambda``, ``freq``); the flux is ``flux``;
+the uncertainty is ``uncertainty`` or ``error``/``err``/``sigma`` (standard deviation),
+``ivar`` (inverse variance) or ``variance``/``var``. Units come from the file (ECSV units,
+FITS TUNITn / BUNIT / CUNIT1); where the file has none they must be given.
+
+The wavelength medium comes from ``meta["medium"]``, a FITS keyword ``MEDIUM``
+('air'/'vacuum') or a 1-D WCS CTYPE1 (``AWAV`` = air, ``WAVE`` = vacuum).
+
+Every writer writes to a temporary file in the target directory and renames it into
+place, so a crash never leaves a half-written file under the final name.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import astropy.units as u
+import numpy as np
+
+__all__ = [
+    "FORMATS",
+    "SpectrumArrays",
+    "SpectrumReadError",
+    "atomic_path",
+    "detect_format",
+    "read_arrays",
+    "read_spectrum",
+    "write_spectrum",
+    "write_table",
+]
+
+FORMATS = {
+    "tabular-fits": "FITS binary table (HDU 1)",
+    "wcs1d-fits": "FITS image with a linear 1-D WCS",
+    "ecsv": "astropy ECSV table",
+    "ascii": "plain text / CSV table with a header line",
+}
+
+_FITS_EXT = (".fits", ".fit", ".fts", ".fits.gz", ".fit.gz")
+_ASCII_EXT = (".csv", ".txt", ".dat", ".tsv")
+
+AXIS_NAMES = {
+    "wavelength": "wavelength",
+    "wave": "wavelength",
+    "lambda": "wavelength",
+    "wavelen": "wavelength",
+    "frequency": "frequency",
+    "freq": "frequency",
+    "energy": "energy",
+}
+SIGMA_NAMES = {
+    "uncertainty": "stddev",
+    "error": "stddev",
+    "err": "stddev",
+    "sigma": "stddev",
+    "stddev": "stddev",
+    "ivar": "ivar",
+    "inverse_variance": "ivar",
+    "variance": "var",
+    "var": "var",
+}
+
+
+class SpectrumReadError(ValueError):
+    """A file could not be read as a 1-D spectrum; the message says why."""
+
+
+@dataclass
+class SpectrumArrays:
+    """A spectrum as plain arrays (what crosses process boundaries in batch work)."""
+
+    axis: np.ndarray
+    axis_unit: str
+    flux: np.ndarray
+    flux_unit: str
+    sigma: np.ndarray | None
+    medium: str | None = None
+    meta: dict = field(default_factory=dict)
+
+    def to_spectrum(self):
+        """A specutils Spectrum (StdDevUncertainty; meta medium set)."""
+        from astropy.nddata import StdDevUncertainty
+        from specutils import Spectrum
+
+        meta = dict(self.meta)
+        if self.medium is not None:
+            meta["medium"] = self.medium
+        unc = None if self.sigma is None else StdDevUncertainty(self.sigma)
+        return Spectrum(
+            flux=self.flux * u.Unit(self.flux_unit), spectral_axis=self.axis * u.Unit(self.axis_unit), uncertainty=unc, meta=meta
+        )
+
+
+def detect_format(path: str | Path) -> str:
+    """Format name of a spectrum file, from its extension (and HDU 1 for FITS)."""
+    p = str(path).lower()
+    if p.endswith(_FITS_EXT):
+        from astropy.io import fits
+
+        try:
+            with fits.open(path, memmap=False) as hdul:
+                if len(hdul) > 1 and isinstance(hdul[1], fits.BinTableHDU):
+                    return "tabular-fits"
+                return "wcs1d-fits"
+        except Exception as exc:  # unreadable FITS: the reader will say why
+            raise SpectrumReadError(f"{path}: not a readable FITS file ({exc})") from exc
+    if p.endswith(".ecsv"):
+        return "ecsv"
+    if p.endswith(_ASCII_EXT):
+        return "ascii"
+    raise SpectrumReadError(f"{path}: unknown spectrum format (extension); allowed: .fits, .ecsv, .csv, .txt, .dat")
+
+
+def _unit(text, what, path, default):
+    if text in (None, "", "None"):
+        if default is None:
+            raise SpectrumReadError(f"{path}: the file gives no unit for the {what}, and none was configured")
+        return u.Unit(default)
+    try:
+        return u.Unit(text)
+    except ValueError as exc:
+        raise SpectrumReadError(f"{path}: unit {text!r} of the {what} is not a unit astropy knows") from exc
+
+
+def _from_table(t, path, spectral_unit, flux_unit):
+    names = {c.lower(): c for c in t.colnames}
+    axis_col = next((names[n] for n in AXIS_NAMES if n in names), None)
+    if axis_col is None:
+        raise SpectrumReadError(
+            f"{path}: no spectral axis column; expected one of {sorted(AXIS_NAMES)} (case-insensitive), found {t.colnames}"
+        )
+    if "flux" not in names:
+        raise SpectrumReadError(f"{path}: no 'flux' column; found {t.colnames}")
+    flux_col = names["flux"]
+    sig_col, sig_kind = next(((names[n], k) for n, k in SIGMA_NAMES.items() if n in names), (None, None))
+
+    def col(name):
+        c = t[name]
+        unit = getattr(c, "unit", None)
+        return np.asarray(getattr(c, "value", c), dtype=float), (None if unit is None else unit.to_string())
+
+    axis, au = col(axis_col)
+    flux, fu = col(flux_col)
+    au = _unit(au, "spectral axis", path, spectral_unit)
+    fu = _unit(fu, "flux", path, flux_unit)
+    sigma = None
+    if sig_col is not None:
+        s, su = col(sig_col)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if sig_kind == "ivar":
+                sigma = np.where(s > 0, 1.0 / np.sqrt(s), np.nan)
+            elif sig_kind == "var":
+                sigma = np.sqrt(s)
+            else:
+                sigma = s
+        if su not in (None, "") and sig_kind == "stddev":
+            sigma = (sigma * u.Unit(su)).to_value(fu)
+    return axis, au, flux, fu, sigma
+
+
+def read_arrays(
+    path: str | Path, fmt: str | None = None, *, spectral_unit=None, flux_unit=None, medium: str | None = None
+) -> SpectrumArrays:
+    """Read a 1-D spectrum into plain arrays, with checks that give clear messages.
+
+    Parameters
+    ----------
+    path : str or Path
+    fmt : str, optional
+        One of :data:`FORMATS`; detected from the file when None (costs a file open).
+    spectral_unit, flux_unit : str, optional
+        Units to use when the file does not give them.
+    medium : {"air", "vacuum"}, optional
+        Wavelength medium when the file does not say.
+
+    Raises
+    ------
+    SpectrumReadError
+        Empty, truncated, unreadable files; missing columns or units; fewer than 3 finite
+        pixels; an unsorted or repeated spectral axis; a spectral axis that is not a
+        wavelength, frequency or energy.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise SpectrumReadError(f"{path}: no such file")
+    if path.stat().st_size == 0:
+        raise SpectrumReadError(f"{path}: empty file")
+    fmt = fmt or detect_format(path)
+    if fmt not in FORMATS:
+        raise SpectrumReadError(f"format must be one of {sorted(FORMATS)}, got {fmt!r}")
+    file_medium = None
+    meta = {}
+    try:
+        if fmt in ("ecsv", "ascii"):
+            from astropy.table import Table
+
+            if fmt == "ecsv":
+                t = Table.read(path, format="ascii.ecsv")
+            else:
+                t = Table.read(path, format="ascii.csv" if path.suffix.lower() == ".csv" else "ascii.basic")
+            file_medium = (t.meta or {}).get("medium")
+            meta = {k: v for k, v in (t.meta or {}).items() if isinstance(v, (str, int, float))}
+            axis, au, flux, fu, sigma = _from_table(t, path, spectral_unit, flux_unit)
+        else:
+            import warnings
+
+            from astropy.io import fits
+            from astropy.utils.exceptions import AstropyUserWarning
+
+            with warnings.catch_warnings(), fits.open(path, memmap=False) as hdul:
+                warnings.simplefilter("error", AstropyUserWarning)  # e.g. "File may have been truncated"
+                hdul.verify("exception")
+                if fmt == "tabular-fits":
+                    from astropy.table import Table
+
+                    if len(hdul) < 2:
+                        raise SpectrumReadError(f"{path}: tabular FITS needs a binary table in HDU 1")
+                    t = Table.read(hdul[1])
+                    hdr = hdul[1].header
+                    file_medium = hdr.get("MEDIUM") or hdul[0].header.get("MEDIUM")
+                    axis, au, flux, fu, sigma = _from_table(t, path, spectral_unit, flux_unit)
+                else:
+                    axis, au, flux, fu, sigma, file_medium = _read_wcs1d(hdul, path, spectral_unit, flux_unit)
+                meta = {k: hdul[0].header[k] for k in ("OBJECT", "DATE-OBS", "MJD-OBS") if k in hdul[0].header}
+    except SpectrumReadError:
+        raise
+    except Exception as exc:
+        raise SpectrumReadError(f"{path}: cannot read as {fmt} ({type(exc).__name__}: {exc})") from exc
+    if not au.is_equivalent(u.AA, equivalencies=u.spectral()):
+        raise SpectrumReadError(f"{path}: spectral axis unit {au} is not a wavelength, frequency, energy or wavenumber")
+    if flux.ndim != 1 or axis.shape != flux.shape:
+        raise SpectrumReadError(f"{path}: expected 1-D axis and flux of equal length, got shapes {axis.shape} and {flux.shape}")
+    good = np.isfinite(axis) & np.isfinite(flux)
+    if sigma is not None:
+        good &= np.isfinite(sigma)
+    if good.sum() < 3:
+        raise SpectrumReadError(f"{path}: fewer than 3 finite pixels ({int(good.sum())} of {axis.size}); nothing to fit")
+    d = np.diff(axis[np.isfinite(axis)])
+    if not (np.all(d > 0) or np.all(d < 0)):
+        raise SpectrumReadError(f"{path}: spectral axis is not strictly monotonic (unsorted or repeated values)")
+    med = file_medium if file_medium is not None else medium
+    if isinstance(med, str):
+        med = {"vac": "vacuum", "air": "air", "vacuum": "vacuum"}.get(med.strip().lower(), med)
+    if med not in (None, "air", "vacuum"):
+        raise SpectrumReadError(f"{path}: medium must be 'air' or 'vacuum', got {med!r}")
+    if not au.is_equivalent(u.m):
+        med = "vacuum"
+    return SpectrumArrays(axis, au.to_string(), flux, fu.to_string(), sigma, med, meta)
+
+
+def _read_wcs1d(hdul, path, spectral_unit, flux_unit):
+    from astropy.wcs import WCS
+
+    hdu = hdul[0] if hdul[0].data is not None else (hdul[1] if len(hdul) > 1 else None)
+    if hdu is None or hdu.data is None:
+        raise SpectrumReadError(f"{path}: no image data in HDU 0 or 1")
+    data = np.asarray(hdu.data, dtype=float)
+    if data.ndim != 1:
+        raise SpectrumReadError(f"{path}: 1-D WCS spectrum must have 1-D data, got shape {data.shape}")
+    hdr = hdu.header
+    w = WCS(hdr, naxis=1)
+    axis = w.pixel_to_world_values(np.arange(data.size))
+    axis = np.asarray(axis, dtype=float)
+    cunit = hdr.get("CUNIT1")
+    ctype = str(hdr.get("CTYPE1", ""))
+    au = _unit(cunit, "spectral axis", path, spectral_unit)
+    # astropy WCS returns SI values for known CTYPEs
+    if w.wcs.cunit[0] and str(w.wcs.cunit[0]) != "":
+        au_wcs = u.Unit(str(w.wcs.cunit[0]))
+        axis = (axis * au_wcs).to_value(au)
+    fu = _unit(hdr.get("BUNIT"), "flux", path, flux_unit)
+    sigma = None
+    for ext in hdul[1:]:
+        name = (ext.name or "").lower()
+        if name in SIGMA_NAMES and ext.data is not None:
+            s = np.asarray(ext.data, dtype=float)
+            kind = SIGMA_NAMES[name]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                sigma = np.where(s > 0, 1 / np.sqrt(s), np.nan) if kind == "ivar" else (np.sqrt(s) if kind == "var" else s)
+            break
+    medium = "air" if ctype.upper().startswith("AWAV") else ("vacuum" if ctype.upper().startswith("WAVE") else hdr.get("MEDIUM"))
+    return axis, au, data, fu, sigma, medium
+
+
+def read_spectrum(path, fmt=None, **kwargs):
+    """Read a file into a :class:`specutils.Spectrum` (see :func:`read_arrays`)."""
+    return read_arrays(path, fmt, **kwargs).to_spectrum()
+
+
+class atomic_path:
+    """Context manager yielding a temporary path beside ``target``; renamed onto it on success."""
+
+    def __init__(self, target: str | Path):
+        self.target = Path(target)
+
+    def __enter__(self) -> Path:
+        self.target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{self.target.name}.", suffix=".tmp" + "".join(self.target.suffixes), dir=self.target.parent)
+        os.close(fd)
+        os.unlink(tmp)
+        self.tmp = Path(tmp)
+        return self.tmp
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            os.replace(self.tmp, self.target)
+        elif self.tmp.exists():
+            self.tmp.unlink()
+        return False
+
+
+def write_spectrum(spectrum, path: str | Path, *, layout: str | None = None, dtype="float32") -> Path:
+    """Write a Spectrum atomically: .fits (layout "tabular-fits" default, or "wcs1d-fits" for a linear grid), .ecsv, .csv.
+
+    The wavelength medium (``meta["medium"]``) is kept: keyword MEDIUM (tabular FITS),
+    CTYPE1 AWAV/WAVE (1-D WCS), table meta (ECSV).
+    """
+    from astropy.io import fits
+    from astropy.table import Table
+
+    path = Path(path)
+    ax = spectrum.spectral_axis
+    flux = spectrum.flux
+    sig = None
+    if spectrum.uncertainty is not None:
+        from astropy.nddata import StdDevUncertainty
+
+        sig = spectrum.uncertainty.represent_as(StdDevUncertainty).array
+    medium = (spectrum.meta or {}).get("medium")
+    kind = {u.m.physical_type: "wavelength"}.get(ax.unit.physical_type, "energy" if ax.unit.is_equivalent(u.J) else "frequency")
+    name = path.name.lower()
+    with atomic_path(path) as tmp:
+        if name.endswith(_FITS_EXT):
+            layout = layout or "tabular-fits"
+            phdr = fits.Header()
+            for k in ("OBJECT", "MJD-OBS"):
+                if k in (spectrum.meta or {}):
+                    phdr[k] = spectrum.meta[k]
+            if layout == "tabular-fits":
+                cols = [
+                    fits.Column(name=kind, array=np.asarray(ax.value, dtype="float64"), format="D", unit=ax.unit.to_string("fits")),
+                    fits.Column(
+                        name="flux",
+                        array=np.asarray(flux.value, dtype=dtype),
+                        format="E" if dtype == "float32" else "D",
+                        unit=flux.unit.to_string("fits"),
+                    ),
+                ]
+                if sig is not None:
+                    cols.append(
+                        fits.Column(
+                            name="uncertainty",
+                            array=np.asarray(sig, dtype=dtype),
+                            format="E" if dtype == "float32" else "D",
+                            unit=flux.unit.to_string("fits"),
+                        )
+                    )
+                tab = fits.BinTableHDU.from_columns(cols)
+                if medium:
+                    tab.header["MEDIUM"] = medium
+                fits.HDUList([fits.PrimaryHDU(header=phdr), tab]).writeto(tmp)
+            elif layout == "wcs1d-fits":
+                x = np.asarray(ax.value, dtype=float)
+                step = np.diff(x)
+                if not np.allclose(step, step[0], rtol=1e-9, atol=0):
+                    raise ValueError("layout 'wcs1d-fits' needs a linear spectral grid")
+                hdr = phdr.copy()
+                hdr["CRPIX1"] = 1.0
+                hdr["CRVAL1"] = x[0]
+                hdr["CDELT1"] = step[0]
+                hdr["CUNIT1"] = ax.unit.to_string("fits")
+                hdr["CTYPE1"] = (
+                    ("AWAV" if medium == "air" else "WAVE") if kind == "wavelength" else ("FREQ" if kind == "frequency" else "ENER")
+                )
+                hdr["BUNIT"] = flux.unit.to_string("fits")
+                hdus = [fits.PrimaryHDU(np.asarray(flux.value, dtype=dtype), header=hdr)]
+                if sig is not None:
+                    hdus.append(fits.ImageHDU(np.asarray(sig, dtype=dtype), name="UNCERTAINTY"))
+                fits.HDUList(hdus).writeto(tmp)
+            else:
+                raise ValueError(f"layout must be 'tabular-fits' or 'wcs1d-fits', got {layout!r}")
+        else:
+            t = Table()
+            t[kind] = np.asarray(ax.value) * ax.unit
+            t["flux"] = np.asarray(flux.value, dtype=dtype) * flux.unit
+            if sig is not None:
+                t["uncertainty"] = np.asarray(sig, dtype=dtype) * flux.unit
+            if medium:
+                t.meta["medium"] = medium
+            for k in ("OBJECT", "MJD-OBS"):
+                if k in (spectrum.meta or {}):
+                    t.meta[k] = spectrum.meta[k]
+            if name.endswith(".ecsv"):
+                for c in ("flux", "uncertainty"):
+                    if c in t.colnames:
+                        t[c].info.format = ".6g"
+                t.write(tmp, format="ascii.ecsv")
+            elif name.endswith(_ASCII_EXT):
+                t.write(tmp, format="ascii.csv")
+            else:
+                raise ValueError(f"cannot write a spectrum to {path.name!r}: use .fits, .ecsv or .csv")
+    return path
+
+
+TABLE_FORMATS = {".ecsv": "ascii.ecsv", ".csv": "ascii.csv", ".fits": "fits", ".parquet": "parquet"}
+
+
+def write_table(table, path: str | Path) -> Path:
+    """Write an astropy Table atomically; format from the extension (.ecsv, .csv, .fits, .parquet)."""
+    path = Path(path)
+    fmt = TABLE_FORMATS.get(path.suffix.lower())
+    if fmt is None:
+        raise ValueError(f"result table extension must be one of {sorted(TABLE_FORMATS)}, got {path.suffix!r}")
+    with atomic_path(path) as tmp:
+        table.write(tmp, format=fmt)
+    return path

@@ -1,0 +1,115 @@
+"""Forward models: precessing jets, cone line profiles, synthetic spectra.
+
+Sources: Abell & Margon 1979, Nature 279, 701 and Margon 1984, ARA&A 22, 507 (kinematic model of
+precessing jets); Rybicki & Lightman 1979 sec. 4.1 (Doppler factor).
+"""
+
+from __future__ import annotations
+
+import astropy.units as u
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from numpy.testing import assert_allclose
+
+import dopplerkit as dk
+from dopplerkit.models import LineComponent, cone_directions, cone_line_profile, precessing_jet_redshifts, synthesize_spectrum
+
+
+@settings(max_examples=50)
+@given(beta=st.floats(0.01, 0.95), i=st.floats(0, 180), c=st.floats(0, 90), p=st.floats(1, 500), t0=st.floats(-100, 100))
+def test_precession_mean_is_transverse_doppler(beta, i, c, p, t0):
+    # Margon 1984: (z_1 + z_2)/2 = Gamma - 1 at every phase.
+    t = np.linspace(-300, 300, 37)
+    z1, z2 = precessing_jet_redshifts(t, beta, i * u.deg, c * u.deg, p, t0)
+    g = dk.lorentz_factor(beta)
+    assert_allclose(0.5 * (z1 + z2), (g * beta) ** 2 / (g + 1), rtol=1e-12, atol=1e-15)
+
+
+def test_precession_published_system():
+    # Margon 1984 (values from memory): beta = 0.26, i = 79 deg, cone 20 deg, P = 162.5 d give a mean
+    # redshift of 0.036 and moving-line redshifts swinging between about -0.09 and +0.17 (z_2 max ~0.17).
+    t = np.linspace(0, 162.5, 2001)
+    z1, z2 = precessing_jet_redshifts(t, 0.26, 79 * u.deg, 20 * u.deg, 162.5, 0.0)
+    assert_allclose(np.mean(0.5 * (z1 + z2)), 0.036, atol=5e-4)
+    assert_allclose(z1.min(), -0.09, atol=0.015)
+    assert_allclose(z2.max(), 0.17, atol=0.01)
+    # jet 1 is nearest the line of sight at t0: most blueshifted there
+    assert np.argmin(z1) == 0
+
+
+def test_precession_with_time_quantities():
+    z1, _z2 = precessing_jet_redshifts(np.array([0.0, 10.0]) * u.d, 0.2, 60 * u.deg, 20 * u.deg, 100 * u.d, 0 * u.d)
+    z1b, _z2b = precessing_jet_redshifts(
+        np.array([0.0, 10.0]) / 24.0 * u.hour * 24 * 24, 0.2, 60 * u.deg, 20 * u.deg, 2400 * u.hour, 0 * u.d
+    )
+    assert_allclose(z1, z1b, rtol=1e-12)
+
+
+def test_light_travel_time():
+    t = np.linspace(0, 200, 11)
+    a = precessing_jet_redshifts(t, 0.26, 79 * u.deg, 20 * u.deg, 162.5, 0.0)
+    b = precessing_jet_redshifts(t, 0.26, 79 * u.deg, 20 * u.deg, 162.5, 0.0, emission_delay=0.0)
+    assert_allclose(a, b, rtol=0, atol=1e-15)
+    # with a delay, jet 1 is seen at the direction of an earlier ejection: t_ej = t - tau (1 - beta cos)
+    tau = 2.0
+    z1, _ = precessing_jet_redshifts(t, 0.26, 79 * u.deg, 20 * u.deg, 162.5, 0.0, emission_delay=tau)
+    cos1 = (dk.lorentz_factor(0.26) - 1 - z1) / (dk.lorentz_factor(0.26) * 0.26)  # from 1 + z_1 = Gamma (1 - beta cos)
+    psi = 2 * np.pi * (t - tau * (1 - 0.26 * cos1)) / 162.5
+    expect = np.sin(np.radians(79)) * np.sin(np.radians(20)) * np.cos(psi) + np.cos(np.radians(79)) * np.cos(np.radians(20))
+    assert_allclose(cos1, expect, atol=1e-9)
+
+
+def test_cone_quadrature_matches_monte_carlo():
+    # Directions uniform over the cone's solid angle (common practice): cos(omega) uniform in [cos phi, 1].
+    rng = np.random.default_rng(3)
+    theta, phi, beta = np.radians(30.0), np.radians(15.0), 0.4
+    n = 400_000
+    mu = rng.uniform(np.cos(phi), 1.0, n)
+    chi = rng.uniform(0, 2 * np.pi, n)
+    cos_psi = np.cos(theta) * mu + np.sin(theta) * np.sqrt(1 - mu**2) * np.cos(chi)
+    d_mc = dk.doppler_factor(beta, np.arccos(cos_psi))
+    cq, w = cone_directions(theta, phi)
+    d_q = dk.doppler_factor(beta, np.arccos(np.clip(cq, -1, 1)))
+    for power in (1, 3, 4):
+        mc = np.mean(d_mc**power)
+        err = np.std(d_mc**power) / np.sqrt(n)
+        assert abs(np.sum(w * d_q**power) - mc) < 4 * err
+    # and the profile: quadrature vs Monte Carlo histogram
+    x = np.linspace(4000, 6000, 801) * u.AA
+    prof = cone_line_profile(x, 6564.61 * u.AA, beta, theta, phi, intrinsic_fwhm=100 * u.km / u.s)
+    hist, edges = np.histogram(6564.61 / d_mc, bins=np.linspace(4000, 6000, 101), density=True)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    coarse = np.interp(centres, x.value, prof.value)
+    assert np.max(np.abs(coarse - hist)) < 0.1 * hist.max()
+    assert_allclose(np.trapezoid(prof.value, x.value), 1.0, rtol=1e-3)
+
+
+def test_cone_zero_opening_is_single_direction():
+    cq, w = cone_directions(0.3, 0.0)
+    assert_allclose(cq, [np.cos(0.3)]) and assert_allclose(w, [1.0])
+
+
+def test_synthesize_places_lines():
+    x = np.linspace(6000, 7500, 6001) * u.AA
+    z = dk.redshift(0.2, 60 * u.deg)
+    s = synthesize_spectrum(x, [LineComponent("H-alpha", z=z, fwhm=500 * u.km / u.s, strength=3.0)], continuum=2.0)
+    peak = x[np.argmax(s.flux.value)].value
+    assert abs(peak - 6564.614 * (1 + z)) < 0.25 + 1e-9
+    assert s.meta["medium"] == "vacuum" and s.uncertainty is not None
+    s_air = synthesize_spectrum(x, [LineComponent("H-alpha", z=0.0, fwhm=100 * u.km / u.s, strength=3.0)], medium="air")
+    assert abs(x[np.argmax(s_air.flux.value)].value - 6562.80) < 0.3  # NIST air value (from memory)
+
+
+def test_synthesize_noise_is_seeded():
+    x = np.linspace(1, 10, 500) * u.keV
+    a = synthesize_spectrum(x, [], snr=10, seed=5, flux_unit="ph / (s cm2 keV)")
+    b = synthesize_spectrum(x, [], snr=10, seed=5, flux_unit="ph / (s cm2 keV)")
+    assert_allclose(a.flux.value, b.flux.value, rtol=0)
+    assert_allclose(np.std(a.flux.value - 1.0), 0.1, rtol=0.15)
+
+
+def test_synthesize_bad_profile():
+    with pytest.raises(ValueError, match="profile must be 'gaussian' or 'lorentzian'"):
+        synthesize_spectrum(np.linspace(6000, 7000, 10) * u.AA, [LineComponent("H-alpha", profile="box")])
