@@ -159,17 +159,36 @@ def _robust_continuum(x, y, w, degree, iters=5):
     return np.polynomial.polynomial.polyval(xs, coef)
 
 
-def _starts(setup: FitSetup, x, y, sig):
-    """Starting (z, fwhm_kms, areas) per group and component, plus the continuum."""
-    cont = _robust_continuum(x, y, 1 / sig, max(setup.continuum_degree, 1))
-    resid = (y - cont) if setup.kind == "emission" else (cont - y)
+def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 8):
+    """Starting (z, fwhm_kms, areas) per group and component, plus the continuum.
+
+    1. A robust polynomial continuum (iterative clipping).
+    2. A scan in z of the smoothed residual relative to the continuum, summed over the lines
+       of the group: its strongest local maxima are candidate components, each with a width
+       from the scan's half-maximum; the strongest also gets two "blend" candidates half a
+       width to either side (two components closer than their widths).
+    3. Every set of ``components`` candidates is scored by a linear least-squares fit of
+       fixed-shape Gaussians plus the continuum (one Gram matrix, tiny solves); the best set
+       wins. This avoids a line of one component being taken for another line of the group.
+    """
+    from itertools import combinations
+
+    if setup.continuum == "powerlaw" and np.all(y > 0) and np.all(x > 0):
+        cont = np.exp(_robust_continuum(np.log(x), np.log(y), 1 / sig, 1))
+    else:
+        cont = _robust_continuum(x, y, 1 / sig, max(setup.continuum_degree, 1))
+    sign = 1.0 if setup.kind == "emission" else -1.0
+    resid = sign * (y - cont)
     order = np.argsort(x)
-    xo, ro = x[order], resid[order]
+    xo, ro = x[order], resid[order] / np.maximum(np.abs(cont[order]), 1e-300)
     dx = np.median(np.diff(xo))
-    # smooth by ~3 pixels to find peaks robustly
     k = np.exp(-0.5 * (np.arange(-6, 7) / 2.0) ** 2)
     k /= k.sum()
     rs = np.convolve(ro, k, mode="same")
+    w = 1.0 / sig
+    xsc = (x - x.mean()) / (np.ptp(x) / 2 or 1.0)
+    deg = setup.continuum_degree
+    cont_cols = [xsc**d for d in range(deg + 1)]
     out = []
     for grp in setup.groups:
         rest = setup.rest[grp]
@@ -177,46 +196,76 @@ def _starts(setup: FitSetup, x, y, sig):
         hi_z = min(setup.z_range[1], (xo[-1] / rest.min() - 1) if setup.wavelike else (rest.max() / xo[0] - 1))
         step = dx / np.median(xo) / 2
         zg = np.arange(lo_z, hi_z, step)
+        if zg.size < 3:
+            zg = np.linspace(setup.z_range[0], setup.z_range[1], 3)
         score = np.zeros_like(zg)
         for r in rest:
             pos = r * (1 + zg) if setup.wavelike else r / (1 + zg)
             inside = (pos >= xo[0]) & (pos <= xo[-1])
             score += np.where(inside, np.interp(pos, xo, rs), 0.0)
-        # pick the strongest separated peaks
-        picks = []
-        sep = setup.min_separation_kms / C_KMS
-        s2 = score.copy()
-        for _ in range(setup.components):
-            if not np.isfinite(s2).any() or np.all(s2 <= -np.inf):
-                break
-            i = int(np.nanargmax(s2))
-            picks.append(zg[i])
-            s2[np.abs(zg - zg[i]) < sep * (1 + abs(zg[i]))] = -np.inf
-        while len(picks) < setup.components:  # not enough peaks: spread the remaining guesses
-            picks.append(picks[-1] + 3 * sep if picks else 0.0)
-        picks = sorted(picks)
-        comps = []
-        for zk in picks:
-            # width from the half-maximum extent of the main line in the smoothed residual
-            r0 = rest[0]
-            pos = r0 * (1 + zk) if setup.wavelike else r0 / (1 + zk)
-            i0 = int(np.clip(np.searchsorted(xo, pos), 1, xo.size - 2))
-            peak = max(rs[i0], 1e-300)
-            j1 = i0
-            while j1 > 0 and rs[j1] > 0.5 * peak and i0 - j1 < 400:
+        peaks = np.flatnonzero((score[1:-1] > score[:-2]) & (score[1:-1] >= score[2:]) & (score[1:-1] > 0)) + 1
+        peaks = peaks[np.argsort(score[peaks])[::-1]][:n_candidates]
+        cands = []
+        for i in peaks:
+            half = 0.5 * score[i]
+            j1 = i
+            while j1 > 0 and score[j1] > half:
                 j1 -= 1
-            j2 = i0
-            while j2 < xo.size - 1 and rs[j2] > 0.5 * peak and j2 - i0 < 400:
+            j2 = i
+            while j2 < zg.size - 1 and score[j2] > half:
                 j2 += 1
-            fwhm_pix = max(j2 - j1, 2)
-            fwhm_kms = float(np.clip(fwhm_pix * dx / pos * C_KMS, *setup.fwhm_range))
-            areas = []
+            wz = max(zg[j2] - zg[j1], 2 * step)
+            fwhm = float(np.clip(wz / (1 + zg[i]) * C_KMS, *setup.fwhm_range))
+            cands.append((float(zg[i]), fwhm))
+        if cands:
+            z0, f0 = cands[0]
+            dz = 0.5 * f0 / C_KMS * (1 + z0)
+            cands += [(z0 - dz, 0.7 * f0), (z0 + dz, 0.7 * f0)]
+        sep = setup.min_separation_kms / C_KMS
+        while len(cands) < setup.components:
+            zlast = cands[-1][0] if cands else 0.0
+            cands.append((zlast + 3 * sep, 500.0))
+        # one Gram matrix over all candidate columns
+        cols = list(cont_cols)
+        for zc, fc in cands:
             for r in rest:
-                p = r * (1 + zk) if setup.wavelike else r / (1 + zk)
-                h = max(float(np.interp(p, xo, rs)), 0.0)
-                sg = p * fwhm_kms / C_KMS / _FWHM_GAUSS
-                areas.append(h * sg * np.sqrt(2 * np.pi))
-            comps.append((zk, fwhm_kms, areas))
+                mu = r * (1 + zc) if setup.wavelike else r / (1 + zc)
+                sg = abs(mu) * fc / C_KMS / _FWHM_GAUSS
+                cols.append(sign * np.exp(-0.5 * ((x - mu) / sg) ** 2) / (sg * np.sqrt(2 * np.pi)))
+        A = np.array(cols).T * w[:, None]
+        G = A.T @ A
+        bvec = A.T @ (y * w)
+        nc, nl = deg + 1, len(rest)
+        best = None
+        for combo in combinations(range(len(cands)), setup.components):
+            zs = [cands[c][0] for c in combo]
+            fs = [cands[c][1] for c in combo]
+            if any(
+                abs(zs[i] - zs[j]) < 0.3 * max(fs[i], fs[j]) / C_KMS * (1 + abs(zs[i]))
+                for i in range(len(zs))
+                for j in range(i + 1, len(zs))
+            ):
+                continue
+            idx = list(range(nc)) + [nc + c * nl + li for c in combo for li in range(nl)]
+            try:
+                sol = np.linalg.solve(G[np.ix_(idx, idx)], bvec[idx])
+            except np.linalg.LinAlgError:
+                continue
+            gain = float(bvec[idx] @ sol)
+            penalty = np.sum(np.minimum(sol[nc:], 0.0))  # negative line areas are implausible
+            key = gain + 1e6 * penalty * (penalty < 0)
+            if best is None or key > best[0]:
+                best = (key, combo, sol)
+        if best is None:
+            combo, sol = tuple(range(setup.components)), np.zeros(nc + setup.components * nl)
+        else:
+            _, combo, sol = best
+        comps = []
+        for n, c in enumerate(combo):
+            zc, fc = cands[c]
+            areas = [max(float(sol[nc + n * nl + li]), 0.0) for li in range(nl)]
+            comps.append((zc, fc, areas))
+        comps.sort(key=lambda t: t[0])
         out.append(comps)
     return out, cont
 
@@ -416,6 +465,8 @@ class LineFitter:
                         flags.append("redchi")
                     if not np.isfinite(ze):
                         flags.append("no_errors")
+                    if not (ae > 0 and a / ae >= 3):
+                        flags.append("weak")
                     rows.append(
                         {
                             "line": s.names[lidx],
@@ -561,6 +612,8 @@ def _lmfit_rows(setup, result, dx):
                     flags.append("redchi")
                 if not np.isfinite(ze):
                     flags.append("no_errors")
+                if not (np.isfinite(ae) and ae > 0 and abs(a.value) / ae >= 3):
+                    flags.append("weak")
                 rows.append(
                     {
                         "line": s.names[lidx],
@@ -708,7 +761,8 @@ def measure_lines(
         ``z``, ``z_err``, ``v_radial``, ``v_radial_err`` (km/s, relativistic radial speed,
         positive receding), ``fwhm``, ``fwhm_err`` (km/s), ``flux``, ``flux_err`` (flux unit x
         axis unit; negative for absorption), ``snr``, ``redchi``, ``flags`` (comma-separated:
-        "at_bound", "unresolved", "redchi", "no_errors"). Flags also raise
+        "at_bound", "unresolved", "redchi", "no_errors", "weak" = S/N of the
+        line flux below 3, e.g. a second component that is not there or a blend). Flags also raise
         :class:`UnresolvedLineWarning` / :class:`FitAtBoundWarning`.
     """
     from .spectra import spectral_medium

@@ -334,6 +334,11 @@ def synthesize_spectrum(
     -------
     specutils.Spectrum
         With StdDevUncertainty.
+
+    Notes
+    -----
+    Profiles are evaluated at the pixel centres, not integrated over the pixels: a line much
+    narrower than a pixel can fall between samples. Keep lines wider than ~2 pixels.
     """
     from astropy.nddata import StdDevUncertainty
     from scipy.special import voigt_profile

@@ -133,7 +133,7 @@ def test_bad_sigma_and_unknown_medium():
 
 def test_unresolved_line_is_flagged():
     x = np.arange(6400.0, 6800.0, 4.0) * u.AA
-    s = synthesize_spectrum(x, [LineComponent("H-alpha", z=0.01, fwhm=40 * u.km / u.s, strength=5.0)], snr=50, seed=1)
+    s = synthesize_spectrum(x, [LineComponent("H-alpha", z=0.01, fwhm=150 * u.km / u.s, strength=5.0)], snr=50, seed=1)
     with pytest.warns(UnresolvedLineWarning):
         t = measure_lines(s, "H-alpha", method="fast")
     assert "unresolved" in t["flags"][0]

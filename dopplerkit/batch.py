@@ -1,0 +1,650 @@
+"""Batch fitting of whole directories of spectra, locally or on a Dask cluster.
+
+``dopplerkit batch SPECTRA_DIR --config CONFIG.toml --output RESULTS.ecsv``
+
+* Files are found recursively (``--pattern`` narrows them); the format is detected once per
+  directory and extension and passed explicitly to the reader (a file whose layout differs is
+  detected on its own).
+* Work goes out in chunks (``--chunk-size``, default 100) as file paths and a plain config
+  dict; results come back as plain rows. Locally a process pool (``--workers``); with
+  ``--scheduler`` an existing Dask distributed cluster.
+* Every finished row is appended at once to a journal beside the output
+  (``.RESULTS.ecsv.journal.jsonl``, JSON lines), so a crash loses nothing already done;
+  at the end the whole table is written atomically (temporary file + rename) and the journal
+  removed. ``--resume`` reads the output and/or journal and skips spectra already fitted
+  with the same configuration.
+* One bad file never stops the batch: it gets a row with ``status = "error"`` and a message.
+
+Exit codes: 0 every spectrum fitted; 1 some failed (the table is still written);
+2 nothing could run (bad configuration, missing directory, no spectra).
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import hashlib
+import json
+import math
+import os
+import sys
+import time
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ._version import __version__
+
+__all__ = [
+    "EXIT_NOTHING_RAN",
+    "EXIT_OK",
+    "EXIT_SOME_FAILED",
+    "BatchConfig",
+    "find_spectra",
+    "jet_pair_closed_form",
+    "load_config",
+    "process_chunk",
+    "run_batch",
+]
+
+EXIT_OK = 0
+EXIT_SOME_FAILED = 1
+EXIT_NOTHING_RAN = 2
+
+SPECTRUM_EXTENSIONS = (".fits", ".fit", ".fts", ".fits.gz", ".ecsv", ".csv", ".txt", ".dat")
+
+_ALLOWED = {
+    "line": {"name", "rest", "medium", "components", "label"},
+    "kinematics": {"model"},
+    "spectra": {"medium", "spectral_unit", "flux_unit"},
+    "fit": {"tie", "kind", "continuum_degree", "window", "window_kms", "z_min", "z_max"},
+}
+MODELS = {"jet-pair": "beta and viewing angle per spectrum from each two-component line", "none": "line shifts only"}
+
+
+class ConfigError(ValueError):
+    """The batch configuration is invalid; the message names the key and the allowed values."""
+
+
+@dataclass(frozen=True)
+class BatchConfig:
+    """A validated batch configuration (plain data, safe to send to workers)."""
+
+    lines: tuple
+    model: str = "none"
+    medium: str | None = None
+    spectral_unit: str | None = None
+    flux_unit: str | None = None
+    tie: bool = False
+    kind: str = "emission"
+    continuum_degree: int = 1
+    window: float = 6.0
+    window_kms: float = 3000.0
+    z_min: float = -0.9
+    z_max: float = 3.0
+
+    def as_dict(self) -> dict:
+        return {k: (list(map(dict, v)) if k == "lines" else v) for k, v in self.__dict__.items()}
+
+    @property
+    def hash(self) -> str:
+        """Short hash of the canonical configuration (recorded in every row)."""
+        return hashlib.sha256(json.dumps(self.as_dict(), sort_keys=True).encode()).hexdigest()[:12]
+
+
+def _err(msg):
+    raise ConfigError(msg)
+
+
+def load_config(path: str | Path) -> BatchConfig:
+    """Read and validate a TOML batch configuration. See the module docs for the keys."""
+    path = Path(path)
+    if not path.is_file():
+        _err(f"configuration file {str(path)!r} does not exist")
+    try:
+        with path.open("rb") as fh:
+            data = tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        _err(f"{path}: not valid TOML ({exc})")
+    return parse_config(data, str(path))
+
+
+def parse_config(data: dict, where: str = "config") -> BatchConfig:
+    """Validate a configuration given as a dict (the parsed TOML)."""
+    unknown = set(data) - set(_ALLOWED)
+    if unknown:
+        _err(f"{where}: unknown section(s) {sorted(unknown)}; allowed: {sorted(_ALLOWED)}")
+    raw_lines = data.get("line")
+    if not raw_lines or not isinstance(raw_lines, list):
+        _err(f'{where}: at least one [[line]] table is required, e.g. [[line]] name = "H-alpha" components = 2')
+    lines = []
+    from .lines import get_line
+
+    for i, ln in enumerate(raw_lines):
+        bad = set(ln) - _ALLOWED["line"]
+        if bad:
+            _err(f"{where}: [[line]] {i}: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['line'])}")
+        comps = ln.get("components", 1)
+        if not isinstance(comps, int) or isinstance(comps, bool) or not 1 <= comps <= 6:
+            _err(f"{where}: [[line]] {i}: components must be an integer 1..6, got {comps!r}")
+        if ("name" in ln) == ("rest" in ln):
+            _err(f'{where}: [[line]] {i}: give exactly one of name (a catalogue line) or rest (e.g. rest = "6564.61 Angstrom")')
+        entry = {"components": comps}
+        if "name" in ln:
+            try:
+                entry["name"] = get_line(str(ln["name"])).name
+            except KeyError as exc:
+                _err(f"{where}: [[line]] {i}: name {ln['name']!r}: {exc.args[0]}")
+        else:
+            import astropy.units as u
+
+            try:
+                q = u.Quantity(str(ln["rest"]))
+            except (TypeError, ValueError) as exc:
+                _err(f'{where}: [[line]] {i}: rest {ln["rest"]!r} is not a quantity like "6564.61 Angstrom" ({exc})')
+            if not q.unit.is_equivalent(u.AA, equivalencies=u.spectral()):
+                _err(f"{where}: [[line]] {i}: rest {ln['rest']!r} must be a wavelength, frequency or energy")
+            med = ln.get("medium")
+            if q.unit.physical_type == "length" and med not in ("air", "vacuum"):
+                _err(f"{where}: [[line]] {i}: medium must be 'air' or 'vacuum' for a rest wavelength, got {med!r}")
+            entry["rest"] = str(ln["rest"])
+            entry["medium"] = med
+        entry["label"] = str(ln.get("label", entry.get("name", entry.get("rest"))))
+        lines.append(entry)
+    kin = data.get("kinematics", {})
+    bad = set(kin) - _ALLOWED["kinematics"]
+    if bad:
+        _err(f"{where}: [kinematics]: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['kinematics'])}")
+    model = kin.get("model", "none")
+    if model not in MODELS:
+        _err(f"{where}: [kinematics] model must be one of {sorted(MODELS)}, got {model!r}")
+    if model == "jet-pair" and not any(ln["components"] == 2 for ln in lines):
+        _err(f"{where}: [kinematics] model 'jet-pair' needs a line with components = 2 (approaching and receding)")
+    sp = data.get("spectra", {})
+    bad = set(sp) - _ALLOWED["spectra"]
+    if bad:
+        _err(f"{where}: [spectra]: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['spectra'])}")
+    medium = sp.get("medium")
+    if medium not in (None, "air", "vacuum"):
+        _err(f"{where}: [spectra] medium must be 'air' or 'vacuum', got {medium!r}")
+    for key in ("spectral_unit", "flux_unit"):
+        if key in sp:
+            import astropy.units as u
+
+            try:
+                u.Unit(sp[key])
+            except ValueError:
+                _err(f"{where}: [spectra] {key} {sp[key]!r} is not a unit astropy knows")
+    fit = data.get("fit", {})
+    bad = set(fit) - _ALLOWED["fit"]
+    if bad:
+        _err(f"{where}: [fit]: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['fit'])}")
+    kind = fit.get("kind", "emission")
+    if kind not in ("emission", "absorption"):
+        _err(f"{where}: [fit] kind must be 'emission' or 'absorption', got {kind!r}")
+    deg = fit.get("continuum_degree", 1)
+    if not isinstance(deg, int) or not 0 <= deg <= 3:
+        _err(f"{where}: [fit] continuum_degree must be an integer 0..3, got {deg!r}")
+    tie = fit.get("tie", False)
+    if not isinstance(tie, bool):
+        _err(f"{where}: [fit] tie must be true or false, got {tie!r}")
+    if tie and len({ln["components"] for ln in lines}) > 1:
+        _err(f"{where}: [fit] tie = true needs the same number of components for every line")
+    window = float(fit.get("window", 6.0))
+    window_kms = float(fit.get("window_kms", 3000.0))
+    z_min, z_max = float(fit.get("z_min", -0.9)), float(fit.get("z_max", 3.0))
+    if not (window > 0 and window_kms > 0 and -1 < z_min < z_max):
+        _err(f"{where}: [fit] needs window > 0, window_kms > 0 and -1 < z_min < z_max")
+    return BatchConfig(
+        tuple(tuple(sorted(ln.items())) for ln in lines),
+        model,
+        medium,
+        sp.get("spectral_unit"),
+        sp.get("flux_unit"),
+        tie,
+        kind,
+        deg,
+        window,
+        window_kms,
+        z_min,
+        z_max,
+    )
+
+
+def _line_dicts(cfg: dict):
+    return [dict(ln) for ln in cfg["lines"]]
+
+
+def slug(text: str) -> str:
+    """Column-name form of a line label: "H-alpha" -> "h_alpha"."""
+    s = "".join(c.lower() if c.isalnum() else "_" for c in str(text))
+    while "__" in s:
+        s = s.replace("__", "_")
+    return s.strip("_")
+
+
+# ---------------------------------------------------------------------------
+# File discovery
+# ---------------------------------------------------------------------------
+def find_spectra(directory: str | Path, pattern: str | None = None) -> list[Path]:
+    """Every spectrum file under ``directory`` (recursive), sorted; ``pattern`` is a glob on the relative path or name."""
+    d = Path(directory)
+    out = []
+    for p in sorted(d.rglob("*")):
+        if not p.is_file() or p.name.startswith("."):
+            continue
+        rel = p.relative_to(d).as_posix()
+        if pattern is not None:
+            if not (fnmatch.fnmatch(rel, pattern) or fnmatch.fnmatch(p.name, pattern)):
+                continue
+        elif not p.name.lower().endswith(SPECTRUM_EXTENSIONS):
+            continue
+        out.append(p)
+    return out
+
+
+def _formats(paths: list[Path]) -> list[str | None]:
+    """Format per file, detected once per (directory, extension)."""
+    from .io import SpectrumReadError, detect_format
+
+    cache: dict = {}
+    fmts = []
+    for p in paths:
+        key = (p.parent, "".join(p.suffixes[-2:]).lower() if p.name.lower().endswith(".gz") else p.suffix.lower())
+        if key not in cache:
+            try:
+                cache[key] = detect_format(p)
+            except SpectrumReadError:
+                cache[key] = None  # e.g. an empty first file: let each file detect itself
+        fmts.append(cache[key])
+    return fmts
+
+
+# ---------------------------------------------------------------------------
+# Worker side
+# ---------------------------------------------------------------------------
+def jet_pair_closed_form(za, zr, ea, er):
+    """beta, beta_err, theta (deg), theta_err (deg) of a jet pair, with first-order error propagation.
+
+    Gamma = (2 + z_a + z_r)/2, cos theta = (z_r - z_a)/(2 Gamma beta) (Margon 1984, ARA&A 22,
+    507); the Jacobian of this exactly determined map gives the same errors as the lmfit fit
+    of :func:`dopplerkit.fitting.fit_jet_pair` (a test checks it). NaN where unphysical.
+    """
+    g = 0.5 * (2.0 + za + zr)
+    gm1 = 0.5 * (za + zr)
+    if not (gm1 > 0):
+        return math.nan, math.nan, math.nan, math.nan
+    s = math.sqrt(gm1 * (g + 1.0))  # Gamma beta
+    b = s / g
+    d = zr - za
+    c = d / (2.0 * s)
+    if abs(c) > 1:
+        return b, math.nan, math.nan, math.nan
+    th = math.degrees(math.acos(c))
+    db = 1.0 / (2.0 * g**3 * b)
+    beta_err = math.hypot(db * ea, db * er)
+    dca = -1.0 / (2 * s) - d * g / (4 * s**3)
+    dcr = 1.0 / (2 * s) - d * g / (4 * s**3)
+    sin_t = math.sqrt(max(1.0 - c * c, 1e-300))
+    th_err = math.degrees(math.hypot(dca * ea, dcr * er) / sin_t)
+    return b, beta_err, th, th_err
+
+
+def _fitters(cfg, unit, medium, cache):
+    from .measure import LineFitter
+
+    key = (unit, medium)
+    if key not in cache:
+        import astropy.units as u
+
+        lines = _line_dicts(cfg)
+        objs = []
+        for ln in lines:
+            objs.append(ln["name"] if "name" in ln else u.Quantity(ln["rest"]))
+        z_range = (cfg["z_min"], cfg["z_max"])
+        if cfg["tie"]:
+            fitters = [
+                (
+                    lines,
+                    LineFitter.for_lines(
+                        objs,
+                        unit,
+                        medium=medium,
+                        components=lines[0]["components"],
+                        tie=True,
+                        kind=cfg["kind"],
+                        continuum_degree=cfg["continuum_degree"],
+                        z_range=z_range,
+                        window=cfg["window"],
+                        window_kms=cfg["window_kms"],
+                    ),
+                )
+            ]
+        else:
+            fitters = [
+                (
+                    [ln],
+                    LineFitter.for_lines(
+                        [o],
+                        unit,
+                        medium=medium,
+                        components=ln["components"],
+                        kind=cfg["kind"],
+                        continuum_degree=cfg["continuum_degree"],
+                        z_range=z_range,
+                        window=cfg["window"],
+                        window_kms=cfg["window_kms"],
+                    ),
+                )
+                for ln, o in zip(lines, objs, strict=True)
+            ]
+        for lns, f in fitters:
+            f.setup.names = [ln["label"] for ln in lns]  # rows and columns carry the configured labels
+        cache[key] = fitters
+    return cache[key]
+
+
+def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
+    from .io import SpectrumReadError, detect_format, read_arrays
+
+    try:
+        arr = read_arrays(path, fmt, spectral_unit=cfg["spectral_unit"], flux_unit=cfg["flux_unit"], medium=cfg["medium"])
+    except SpectrumReadError:
+        det = None
+        try:
+            det = detect_format(path)
+        except SpectrumReadError:
+            pass
+        if det is None or det == fmt:
+            raise
+        arr = read_arrays(path, det, spectral_unit=cfg["spectral_unit"], flux_unit=cfg["flux_unit"], medium=cfg["medium"])
+    if arr.sigma is None:
+        raise ValueError("the file has no uncertainty column (uncertainty, error or ivar): line centres need per-pixel errors")
+    import astropy.units as u
+
+    if u.Unit(arr.axis_unit).is_equivalent(u.m) and arr.medium is None:
+        raise ValueError(
+            "wavelength medium unknown: the file does not say (MEDIUM keyword, CTYPE1 AWAV/WAVE) and [spectra] medium is not set"
+        )
+    order = np.argsort(arr.axis)
+    from .measure import _clean, _starts
+
+    x, y, sig = _clean(arr.axis[order], arr.flux[order], arr.sigma[order])
+    fscale = float(np.median(np.abs(y))) or 1.0
+    y, sig = y / fscale, sig / fscale
+    row: dict = {"axis_unit": arr.axis_unit}
+    flags = set()
+    redchi = []
+    for lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
+        starts, cont = _starts(fitter.setup, x, y, sig)
+        rows, info = fitter.fit_arrays(x, y, sig, starts=starts, cont=cont)
+        redchi.append(info["redchi"])
+        for r in rows:
+            pre = f"{slug(r['line'])}_{r['component']}"
+            row[f"{pre}_centre"] = float(r["centre"])
+            row[f"{pre}_centre_err"] = float(r["centre_err"])
+            row[f"{pre}_z"] = float(r["z"])
+            row[f"{pre}_z_err"] = float(r["z_err"])
+            row[f"{pre}_fwhm"] = float(r["fwhm"])
+            row[f"{pre}_flux"] = float(r["flux"]) * fscale
+            flags.update(r["flags"])
+    if cfg["model"] == "jet-pair":
+        pairs = []
+        for ln in _line_dicts(cfg):
+            if ln["components"] == 2:
+                pre = slug(ln["label"])
+                pairs.append(tuple(row[f"{pre}_{c}_{q}"] for c in ("approaching", "receding") for q in ("z", "z_err")))
+            if cfg["tie"]:
+                break  # tied lines share one pair
+        if len(pairs) == 1:
+            za, ea, zr, er = pairs[0]
+            b, be, th, te = jet_pair_closed_form(za, zr, ea, er)
+        else:
+            from .fitting import fit_constraints
+
+            f = fit_constraints(z_pairs=[(p[0], p[2], p[1], p[3]) for p in pairs])
+            b, be, th, te = f.beta, f.beta_err, f.value("viewing_angle"), f.error("viewing_angle")
+        if not np.isfinite(b) or not np.isfinite(th):
+            flags.add("unphysical_pair")
+        row.update({"beta": b, "beta_err": be, "viewing_angle": th, "viewing_angle_err": te})
+    row["redchi"] = float(max(redchi)) if redchi else math.nan
+    row["flags"] = ",".join(sorted(flags))
+    return row
+
+
+def process_chunk(paths: list[str], fmts: list[str | None], cfg: dict) -> list[dict]:
+    """Fit a chunk of files; plain rows out. Never raises for a bad file: it becomes an error row."""
+    import warnings
+
+    cache: dict = {}
+    out = []
+    for p, fmt in zip(paths, fmts, strict=True):
+        t0 = time.perf_counter()
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                row = _fit_one(p, fmt, cfg, cache)
+            row.update({"file": p, "status": "ok", "message": ""})
+        except Exception as exc:  # one bad file must not stop the batch
+            msg = str(exc).replace("\n", " ")
+            row = {"file": p, "status": "error", "message": f"{type(exc).__name__}: {msg}"[:500]}
+        row["seconds"] = time.perf_counter() - t0
+        out.append(row)
+    return out
+
+
+# ---------------------------------------------------------------------------
+# Driver
+# ---------------------------------------------------------------------------
+def _journal_path(output: Path) -> Path:
+    return output.with_name(f".{output.name}.journal.jsonl")
+
+
+def _read_previous(output: Path, config_hash: str) -> dict:
+    """Rows already done (same config), from the output table and the journal."""
+    rows: dict = {}
+    if output.exists():
+        try:
+            from astropy.table import Table
+
+            t = Table.read(output)
+            for r in t:
+                d = {k: (r[k].item() if hasattr(r[k], "item") else r[k]) for k in t.colnames}
+                if d.get("config_hash") == config_hash:
+                    rows[d["file"]] = d
+        except Exception as exc:
+            print(
+                f"dopplerkit batch: warning: cannot read the existing output {output} for --resume ({exc}); starting over", file=sys.stderr
+            )
+    j = _journal_path(output)
+    if j.exists():
+        with j.open() as fh:
+            for line in fh:
+                try:
+                    d = json.loads(line)
+                except json.JSONDecodeError:
+                    continue  # a line torn by a crash
+                if d.get("config_hash") == config_hash:
+                    rows[d["file"]] = d
+    return rows
+
+
+def _to_table(rows: list[dict]):
+    from astropy.table import Table
+
+    fixed = ["file", "status", "message"]
+    tail = [
+        "beta",
+        "beta_err",
+        "viewing_angle",
+        "viewing_angle_err",
+        "redchi",
+        "flags",
+        "axis_unit",
+        "seconds",
+        "config_hash",
+        "dopplerkit_version",
+    ]
+    keys = []
+    for r in rows:
+        for k in r:
+            if k not in keys and k not in fixed and k not in tail:
+                keys.append(k)
+    cols = fixed + keys + [k for k in tail if any(k in r for r in rows)]
+    data = {}
+    for k in cols:
+        vals = [r.get(k) for r in rows]
+        if k in ("file", "status", "message", "flags", "axis_unit", "config_hash", "dopplerkit_version"):
+            data[k] = [("" if v is None else str(v)) for v in vals]
+        else:
+            data[k] = np.array([np.nan if v is None else float(v) for v in vals])
+    t = Table(data)
+    if "viewing_angle" in t.colnames:
+        t["viewing_angle"].unit = "deg"
+        t["viewing_angle_err"].unit = "deg"
+    t.meta["comment"] = ["dopplerkit batch results; viewing angles in degrees (0 = moving straight at us); z < 0 is a blueshift"]
+    return t
+
+
+def run_batch(
+    spectra_dir,
+    config,
+    output,
+    *,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    resume: bool = False,
+    pattern: str | None = None,
+    chunk_size: int = 100,
+    quiet: bool = False,
+    plot: str | None = None,
+    out=None,
+) -> tuple[int, object]:
+    """Fit every spectrum under ``spectra_dir``; return (exit code, result Table)."""
+    out = out or sys.stderr
+    d = Path(spectra_dir)
+    if not d.is_dir():
+        raise ConfigError(f"SPECTRA_DIR {str(d)!r} is not a directory")
+    cfg = config if isinstance(config, BatchConfig) else load_config(config)
+    output = Path(output)
+    from .io import TABLE_FORMATS, write_table
+
+    if output.suffix.lower() not in TABLE_FORMATS:
+        raise ConfigError(f"--output extension must be one of {sorted(TABLE_FORMATS)}, got {output.suffix!r}")
+    if chunk_size < 1:
+        raise ConfigError(f"--chunk-size must be >= 1, got {chunk_size}")
+    if workers is not None and workers < 1:
+        raise ConfigError(f"--workers must be >= 1, got {workers}")
+    paths = find_spectra(d, pattern)
+    if not paths:
+        raise ConfigError(
+            f"no spectra found under {str(d)!r}"
+            + (f" matching {pattern!r}" if pattern else f" (extensions {', '.join(SPECTRUM_EXTENSIONS)})")
+        )
+    h = cfg.hash
+    previous = _read_previous(output, h) if resume else {}
+    journal = _journal_path(output)
+    if not resume and journal.exists():
+        journal.unlink()
+    todo = [p for p in paths if str(p) not in previous or previous[str(p)].get("status") != "ok"]
+    fmts = _formats(todo)
+    cfgd = cfg.as_dict()
+    chunks = [(list(map(str, todo[i : i + chunk_size])), fmts[i : i + chunk_size]) for i in range(0, len(todo), chunk_size)]
+    rows = dict(previous)
+    t_start = time.perf_counter()
+    n_new = 0
+    output.parent.mkdir(parents=True, exist_ok=True)
+    bar = None
+    if not quiet:
+        from tqdm.auto import tqdm
+
+        bar = tqdm(total=len(paths), initial=len(paths) - len(todo), unit="spectrum", desc="fitting", file=out, dynamic_ncols=True)
+    with journal.open("a") as jf:
+
+        def record(chunk_rows):
+            nonlocal n_new
+            for r in chunk_rows:
+                r["config_hash"] = h
+                r["dopplerkit_version"] = __version__
+                rows[r["file"]] = r
+                jf.write(json.dumps(r, default=float, allow_nan=True) + "\n")
+            jf.flush()
+            os.fsync(jf.fileno())
+            n_new += len(chunk_rows)
+            if bar is not None:
+                bar.update(len(chunk_rows))
+
+        if chunks:
+            if scheduler:
+                _run_dask(scheduler, chunks, cfgd, record)
+            else:
+                _run_local(workers, chunks, cfgd, record)
+    if bar is not None:
+        bar.close()
+    ordered = [rows[str(p)] for p in paths if str(p) in rows]
+    table = _to_table(ordered)
+    write_table(table, output)
+    journal.unlink(missing_ok=True)
+    n_ok = int(np.sum(table["status"] == "ok"))
+    n_err = len(table) - n_ok
+    elapsed = time.perf_counter() - t_start
+    if plot:
+        from .plotting import plot_population
+
+        plot_population(table, path=plot)
+    if not quiet:
+        rate = n_new / elapsed if elapsed > 0 else float("nan")
+        print(
+            f"fitted {n_ok}, failed {n_err}, of {len(paths)} spectra ({len(paths) - len(todo)} resumed); elapsed {elapsed:.1f} s, {rate:.1f} spectra/s; results in {output}",
+            file=out,
+        )
+    return (EXIT_OK if n_err == 0 else EXIT_SOME_FAILED), table
+
+
+def _run_local(workers, chunks, cfgd, record):
+    n = workers or os.cpu_count() or 1
+    if n == 1 or len(chunks) == 1:
+        for paths, fmts in chunks:
+            record(process_chunk(paths, fmts, cfgd))
+        return
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    ctx = mp.get_context("fork" if sys.platform.startswith("linux") else "spawn")
+    with ProcessPoolExecutor(max_workers=n, mp_context=ctx) as ex:
+        futs = [ex.submit(process_chunk, p, f, cfgd) for p, f in chunks]
+        for fut in as_completed(futs):
+            record(fut.result())
+
+
+def _run_dask(address, chunks, cfgd, record):
+    try:
+        from dask.distributed import Client, as_completed
+    except ImportError as exc:  # pragma: no cover
+        raise ConfigError("--scheduler needs dask[distributed]: pip install 'dopplerkit[cluster]'") from exc
+    with Client(address, timeout="20s") as client:
+        futs = [client.submit(process_chunk, p, f, cfgd, pure=False) for p, f in chunks]
+        for fut in as_completed(futs):
+            record(fut.result())
+
+
+def run_batch_cli(args) -> int:
+    """Entry from :mod:`dopplerkit.cli`."""
+    try:
+        code, _ = run_batch(
+            args.spectra_dir,
+            args.config,
+            args.output,
+            workers=args.workers,
+            scheduler=args.scheduler,
+            resume=args.resume,
+            pattern=args.pattern,
+            chunk_size=args.chunk_size,
+            quiet=args.quiet,
+            plot=args.plot,
+        )
+    except ConfigError as exc:
+        print(f"dopplerkit batch: error: {exc}", file=sys.stderr)
+        return EXIT_NOTHING_RAN
+    return code
