@@ -376,7 +376,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     row: dict = {"axis_unit": arr.axis_unit}
     flags = set()
     redchi = []
-    for lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
+    for _lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
         starts, cont = _starts(fitter.setup, x, y, sig)
         rows, info = fitter.fit_arrays(x, y, sig, starts=starts, cont=cont)
         redchi.append(info["redchi"])

@@ -267,7 +267,7 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
     res.mkdir(parents=True, exist_ok=True)
 
     print("== 1. batch fit of the invented survey (data_demo/survey) ==", file=out)
-    code, table = run_batch(
+    _code, table = run_batch(
         data / "survey" / "spectra",
         data / "survey" / "config.toml",
         res / "survey.ecsv",

@@ -108,10 +108,13 @@ def detect_format(path: str | Path) -> str:
     """Format name of a spectrum file, from its extension (and HDU 1 for FITS)."""
     p = str(path).lower()
     if p.endswith(_FITS_EXT):
+        import warnings
+
         from astropy.io import fits
 
         try:
-            with fits.open(path, memmap=False) as hdul:
+            with warnings.catch_warnings(), fits.open(path, memmap=False) as hdul:
+                warnings.simplefilter("error")  # a truncated file warns: make it an error here
                 if len(hdul) > 1 and isinstance(hdul[1], fits.BinTableHDU):
                     return "tabular-fits"
                 return "wcs1d-fits"
