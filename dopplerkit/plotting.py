@@ -109,5 +109,6 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
     ax.set_ylabel(r"$\beta = v/c$")
     ax.set_xlim(0, 180)
     ax.set_ylim(0, 1)
-    ax.legend(frameon=False, fontsize=8, loc="upper right")
+    if bands or solution is not None:
+        ax.legend(frameon=False, fontsize=8, loc="upper right")
     return fig

@@ -1,0 +1,730 @@
+"""Notebook widgets: a spectrum explorer, a beta-viewing angle constraint plane, a precessing-jet explorer.
+
+Each widget is a plain *state* object (no ipywidgets, testable without a browser) and a
+*view* that binds ipywidgets controls to it. The matplotlib figure of a view is created once;
+a control change updates the state, then only the changed artists (``set_data``), and the
+figure is re-rendered into an ``ipywidgets.Image`` (PNG), which works the same in JupyterLab,
+classic notebooks and Voila without a plotting extension. Fits run only on a button press.
+
+CSS classes (stable hooks for tests and styling): ``dk-explorer``, ``dk-speed``,
+``dk-speed-text``, ``dk-angle``, ``dk-readout``, ``dk-figure``, ``dk-fit``, ``dk-plane``,
+``dk-precession``.
+"""
+
+from __future__ import annotations
+
+import io
+from dataclasses import dataclass, field
+from typing import ClassVar
+
+import astropy.units as u
+import numpy as np
+
+from .kinematics import SPEED_OF_LIGHT_KMS, apparent_speed, beaming_factor, doppler_factor, lorentz_factor, redshift
+
+__all__ = ["ConstraintPlane", "ExplorerState", "PlaneState", "PrecessionExplorer", "PrecessionState", "SpectrumExplorer"]
+
+from .plotting import PALETTE
+
+BEAMING_CHOICES = {"none": None, "blob": "blob", "continuous jet": "jet"}
+
+
+def _agg(fig):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    if not isinstance(fig.canvas, FigureCanvasAgg):
+        FigureCanvasAgg(fig)
+        fig.canvas.draw()  # lay out once with the constrained engine, then freeze the layout:
+        fig.set_layout_engine("none")  # re-solving it costs more than drawing, on every slider move
+    return fig.canvas
+
+
+def _png(canvas) -> bytes:
+    from PIL import Image
+
+    w, h = canvas.get_width_height(physical=True)
+    img = Image.frombuffer("RGBA", (w, h), canvas.buffer_rgba(), "raw", "RGBA", 0, 1)
+    buf = io.BytesIO()
+    img.save(buf, format="png", compress_level=1)  # fast encode: this runs per slider move
+    return buf.getvalue()
+
+
+def _render(fig) -> bytes:
+    """PNG bytes of a whole figure through an Agg canvas attached once (no pyplot, no global state)."""
+    canvas = _agg(fig)
+    canvas.draw()
+    return _png(canvas)
+
+
+class _Blitter:
+    """Redraw only the artists that move: the static part (axes, ticks, labels) is drawn once.
+
+    ``full()`` redraws everything (after a change of axis limits); ``frame()`` restores the
+    static background and draws the moving artists on it. Both return PNG bytes.
+    """
+
+    def __init__(self, fig, artists):
+        self.fig = fig
+        self.artists = list(artists)
+        for a in self.artists:
+            a.set_animated(True)
+        self.canvas = _agg(fig)
+        self.background = None
+
+    def full(self) -> bytes:
+        self.canvas.draw()
+        self.background = self.canvas.copy_from_bbox(self.fig.bbox)
+        return self._draw_moving()
+
+    def frame(self) -> bytes:
+        if self.background is None:
+            return self.full()
+        self.canvas.restore_region(self.background)
+        return self._draw_moving()
+
+    def _draw_moving(self) -> bytes:
+        for a in self.artists:
+            a.axes.draw_artist(a)
+        return _png(self.canvas)
+
+
+# ---------------------------------------------------------------------------
+# 1. Spectrum explorer
+# ---------------------------------------------------------------------------
+@dataclass
+class ExplorerState:
+    """What the spectrum explorer shows, as plain data.
+
+    Attributes
+    ----------
+    axis, flux : ndarray
+        Source-frame (comoving) spectrum; axis in ``axis_unit`` (vacuum if a wavelength).
+    lines : dict
+        Line label -> rest position in ``axis_unit``.
+    beta : float
+        Speed v/c; ``speed_mode`` "gamma" shows and edits the Lorentz factor instead.
+    angle_deg : float
+        Observer-frame viewing angle of the approaching jet (0 = straight at us).
+    beaming : {None, "blob", "jet"}
+    z_cosmo : float
+        Host cosmological redshift, composed as (1 + z_cosmo)/delta.
+    opening_deg : float
+        Half-opening angle of the jet cone; > 0 averages the observed spectrum over the cone.
+    """
+
+    axis: np.ndarray
+    flux: np.ndarray
+    axis_unit: str = "Angstrom"
+    lines: dict = field(default_factory=dict)
+    beta: float = 0.26
+    angle_deg: float = 79.0
+    beaming: str | None = None
+    z_cosmo: float = 0.0
+    opening_deg: float = 0.0
+    speed_mode: str = "beta"
+    alpha: float = 0.7
+
+    @classmethod
+    def synthetic(cls, lines=("H-alpha", "He I 5876", "H-beta"), **kw):
+        """A flat continuum with Gaussian emission lines (invented source spectrum)."""
+        from .lines import rest_value
+
+        axis = np.linspace(3500.0, 10500.0, 2400)
+        rest = {name: rest_value(name, "Angstrom", medium="vacuum").value for name in lines}
+        flux = np.ones_like(axis)
+        for k, r in enumerate(rest.values()):
+            sg = r * 400.0 / SPEED_OF_LIGHT_KMS / 2.3548
+            flux += (2.5 / (k + 1)) * np.exp(-0.5 * ((axis - r) / sg) ** 2)
+        return cls(axis=axis, flux=flux, lines=rest, **kw)
+
+    @classmethod
+    def from_spectrum(cls, spectrum, lines=("H-alpha",), medium="vacuum", **kw):
+        """From a source-frame specutils Spectrum."""
+        from .lines import rest_value
+
+        unit = spectrum.spectral_axis.unit
+        rest = {name: rest_value(name, unit, medium=medium).value for name in lines}
+        order = np.argsort(spectrum.spectral_axis.value)
+        return cls(
+            axis=np.asarray(spectrum.spectral_axis.value)[order],
+            flux=np.asarray(spectrum.flux.value)[order],
+            axis_unit=unit.to_string(),
+            lines=rest,
+            **kw,
+        )
+
+    # -- physics, all from the kinematics core ------------------------------------------
+    @property
+    def gamma(self) -> float:
+        return float(lorentz_factor(self.beta))
+
+    def set_speed(self, value: float) -> None:
+        """Set the speed in the current mode: beta in [0, 1) or the Lorentz factor >= 1."""
+        if self.speed_mode == "gamma":
+            g = float(value)
+            self.beta = float(np.sqrt((g - 1) * (g + 1)) / g) if g >= 1 else 0.0
+        else:
+            self.beta = float(value)
+
+    def readouts(self) -> dict:
+        """Gamma, delta, z (kinematic and total), apparent speed and boosts of the approaching jet."""
+        th = self.angle_deg * u.deg
+        d = float(doppler_factor(self.beta, th))
+        z = float(redshift(self.beta, th))
+        q = self.beaming or "blob"
+        return {
+            "gamma": self.gamma,
+            "delta": d,
+            "z": z,
+            "z_total": (1 + self.z_cosmo) * (1 + z) - 1,
+            "z_counterjet": float(redshift(self.beta, 180 * u.deg - th)),
+            "apparent_speed": float(apparent_speed(self.beta, th)),
+            "boost": float(beaming_factor(self.beta, th, self.alpha, q)) if self.beaming else 1.0,
+            "boost_geometry": q if self.beaming else "none",
+        }
+
+    def _one(self, cos_psi):
+        """Observed axis and flux for one direction (cos of the angle to the line of sight)."""
+        th = np.arccos(np.clip(cos_psi, -1, 1))
+        d = float(doppler_factor(self.beta, th))
+        k = d / (1 + self.z_cosmo)
+        wavelike = u.Unit(self.axis_unit).is_equivalent(u.m)
+        ax = self.axis / k if wavelike else self.axis * k
+        if self.beaming is None:
+            f = self.flux
+        else:
+            q = 3.0 if self.beaming == "blob" else 2.0
+            f = self.flux * d ** (q + (2.0 if wavelike else 0.0))  # F_lambda picks up delta^2 (see dopplerkit.spectra)
+        return ax, f
+
+    def observed(self, which: str = "approaching"):
+        """Observed (axis, flux) of the approaching or receding jet, averaged over the cone if opening_deg > 0."""
+        from .models import cone_directions
+
+        th = self.angle_deg if which == "approaching" else 180.0 - self.angle_deg
+        if self.opening_deg <= 0:
+            return self._one(np.cos(np.radians(th)))
+        cps, w = cone_directions(th * u.deg, self.opening_deg * u.deg, n_polar=6, n_azimuth=12)
+        grid = self._one(np.cos(np.radians(th)))[0]
+        total = np.zeros_like(grid)
+        for c, wi in zip(cps, w, strict=True):
+            ax, f = self._one(c)
+            total += wi * np.interp(grid, ax, f, left=np.nan, right=np.nan)
+        return grid, total
+
+    def shifted_lines(self, which: str = "approaching") -> dict:
+        """Observed positions of the lines (label -> position in axis unit)."""
+        th = self.angle_deg if which == "approaching" else 180.0 - self.angle_deg
+        d = float(doppler_factor(self.beta, th * u.deg))
+        k = d / (1 + self.z_cosmo)
+        wavelike = u.Unit(self.axis_unit).is_equivalent(u.m)
+        return {n: (r / k if wavelike else r * k) for n, r in self.lines.items()}
+
+
+class SpectrumExplorer:
+    """Interactive spectrum explorer (speed, angle, beaming, host redshift, cone opening).
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum, optional
+        Source-frame spectrum; default a synthetic one with H-alpha, He I 5876 and H-beta.
+    lines : sequence of str
+        Lines to mark (catalogue names).
+    observed : specutils.Spectrum, optional
+        An observed spectrum to overlay; enables the fit button (a jet pair in ``lines[0]``).
+    """
+
+    def __init__(self, spectrum=None, lines=("H-alpha", "He I 5876", "H-beta"), observed=None, state: ExplorerState | None = None):
+        import ipywidgets as W
+        from matplotlib.figure import Figure
+
+        if state is None:
+            state = ExplorerState.from_spectrum(spectrum, lines) if spectrum is not None else ExplorerState.synthetic(lines)
+        self.state = state
+        self.observed_spectrum = observed
+        s = state
+        # controls
+        self.speed_mode = W.ToggleButtons(
+            options=[("beta", "beta"), ("Lorentz factor", "gamma")], value=s.speed_mode, description="speed as"
+        )
+        self.speed = W.FloatSlider(
+            value=s.beta, min=0.0, max=0.995, step=0.001, description="beta", readout_format=".3f", continuous_update=True
+        )
+        self.speed_text = W.BoundedFloatText(
+            value=s.beta, min=0.0, max=0.995, step=0.001, description="exact", layout=W.Layout(width="170px")
+        )
+        self.angle = W.FloatSlider(value=s.angle_deg, min=0.0, max=180.0, step=0.5, description="angle (deg)", readout_format=".1f")
+        self.beaming = W.ToggleButtons(options=list(BEAMING_CHOICES), value="none", description="beaming")
+        self.z_cosmo = W.FloatSlider(value=s.z_cosmo, min=0.0, max=3.0, step=0.01, description="host z")
+        self.opening = W.FloatSlider(value=s.opening_deg, min=0.0, max=30.0, step=0.5, description="cone (deg)")
+        self.readout = W.HTML()
+        self.fit_button = W.Button(
+            description="fit observed",
+            icon="crosshairs",
+            disabled=observed is None,
+            tooltip="measure a jet pair in the observed spectrum and fit speed and angle",
+        )
+        self.fit_result = W.HTML()
+        self.image = W.Image(format="png")
+        for w, cls in (
+            (self.speed, "dk-speed"),
+            (self.speed_text, "dk-speed-text"),
+            (self.angle, "dk-angle"),
+            (self.readout, "dk-readout"),
+            (self.image, "dk-figure"),
+            (self.fit_button, "dk-fit"),
+        ):
+            w.add_class(cls)
+        # figure, created once
+        self.fig = Figure(figsize=(8.0, 4.2), dpi=96, layout="constrained")
+        ax0, ax1 = self.fig.subplots(2, 1, sharex=False)
+        self.ax_src, self.ax_obs = ax0, ax1
+        unit = u.Unit(s.axis_unit)
+        ax0.plot(s.axis, s.flux, color=PALETTE["neutral"], lw=1)
+        for name, r in s.lines.items():
+            ax0.axvline(r, color=PALETTE["highlight"], lw=0.8, ls=":")
+            ax0.text(r, 1.02, name, transform=ax0.get_xaxis_transform(), fontsize=7, ha="center", color=PALETTE["neutral"])
+        ax0.set_title("source frame", fontsize=9, loc="left")
+        (self.l_app,) = ax1.plot([], [], color=PALETTE["approaching"], lw=1, label="approaching jet")
+        (self.l_rec,) = ax1.plot([], [], color=PALETTE["receding"], lw=1, ls="--", label="receding jet")
+        self.l_obs = None
+        if observed is not None:
+            (self.l_obs,) = ax1.plot(
+                observed.spectral_axis.to_value(unit, equivalencies=u.spectral()),
+                observed.flux.value / np.nanmedian(observed.flux.value),
+                color="0.55",
+                lw=0.7,
+                label="observed",
+            )
+        self.markers = {n: ax1.axvline(np.nan, color=PALETTE["approaching"], lw=0.6, ls=":") for n in s.lines}
+        self.marker_labels = {
+            n: ax1.text(0, 1.02, n, transform=ax1.get_xaxis_transform(), fontsize=7, ha="center", color=PALETTE["approaching"])
+            for n in s.lines
+        }
+        ax1.set_xlim(s.axis.min() * 0.6, s.axis.max() * 1.4)
+        kind = "wavelength" if unit.is_equivalent(u.m) else ("energy" if unit.is_equivalent(u.J) else "frequency")
+        ax1.set_xlabel(f"observed {kind} ({unit.to_string()})")
+        ax1.set_title("observer frame", fontsize=9, loc="left")
+        ax1.legend(fontsize=7, frameon=False, loc="upper right")
+        self._busy = False
+        self._top = None
+        self.blit = _Blitter(self.fig, [self.l_app, self.l_rec, *self.markers.values(), *self.marker_labels.values()])
+        # wiring
+        self.speed_mode.observe(self._on_mode, "value")
+        self.speed.observe(self._on_speed, "value")
+        self.speed_text.observe(self._on_speed_text, "value")
+        self.angle.observe(self._on_change, "value")
+        self.beaming.observe(self._on_change, "value")
+        self.z_cosmo.observe(self._on_change, "value")
+        self.opening.observe(self._on_change, "value")
+        self.fit_button.on_click(self._on_fit)
+        self.widget = W.VBox(
+            [
+                W.HBox([self.speed_mode]),
+                W.HBox([self.speed, self.speed_text]),
+                W.HBox([self.angle, self.beaming]),
+                W.HBox([self.z_cosmo, self.opening]),
+                self.readout,
+                self.image,
+                W.HBox([self.fit_button, self.fit_result]),
+            ]
+        )
+        self.widget.add_class("dk-explorer")
+        self.update()
+
+    # -- callbacks --------------------------------------------------------------------
+    def _sync_state(self):
+        s = self.state
+        s.angle_deg = float(self.angle.value)
+        s.beaming = BEAMING_CHOICES[self.beaming.value]
+        s.z_cosmo = float(self.z_cosmo.value)
+        s.opening_deg = float(self.opening.value)
+
+    def _on_mode(self, change):
+        s = self.state
+        s.speed_mode = change["new"]
+        self._busy = True
+        try:
+            # widen before narrowing, so min never exceeds max on the way
+            if s.speed_mode == "gamma":
+                self.speed.description = "Lorentz factor"
+                self.speed.max, self.speed.min, self.speed.step = 10.0, 1.0, 0.001
+                self.speed_text.max, self.speed_text.min = 1e6, 1.0
+                v = s.gamma
+            else:
+                self.speed.description = "beta"
+                self.speed.min, self.speed.max, self.speed.step = 0.0, 0.995, 0.001
+                self.speed_text.min, self.speed_text.max = 0.0, 0.999999
+                v = s.beta
+            self.speed.value = min(max(v, self.speed.min), self.speed.max)
+            self.speed_text.value = v
+        finally:
+            self._busy = False
+        self.update()
+
+    def _on_speed(self, change):
+        if self._busy:
+            return
+        self.state.set_speed(change["new"])
+        self._busy = True
+        self.speed_text.value = change["new"]
+        self._busy = False
+        self.update()
+
+    def _on_speed_text(self, change):
+        if self._busy:
+            return
+        self.state.set_speed(change["new"])
+        self._busy = True
+        self.speed.value = min(max(change["new"], self.speed.min), self.speed.max)
+        self._busy = False
+        self.update()
+
+    def _on_change(self, _change=None):
+        self.update()
+
+    def update(self):
+        """State -> artists (set_data) -> one re-render of the figure."""
+        self._sync_state()
+        s = self.state
+        r = s.readouts()
+        self.readout.value = (
+            f"<span class='dk-readout-text'>Lorentz factor {r['gamma']:.5f} &nbsp; | &nbsp; Doppler factor "
+            f"<b class='dk-delta'>{r['delta']:.5f}</b> &nbsp; | &nbsp; z (jet) {r['z']:+.5f}, counter-jet {r['z_counterjet']:+.5f}, "
+            f"total with host {r['z_total']:+.5f} &nbsp; | &nbsp; apparent speed {r['apparent_speed']:.4f} c &nbsp; | &nbsp; "
+            f"boost ({r['boost_geometry']}, alpha {s.alpha:g}) {r['boost']:.4g}</span>"
+        )
+        x, f = s.observed("approaching")
+        self.l_app.set_data(x, f)
+        xr, fr = s.observed("receding")
+        self.l_rec.set_data(xr, fr)
+        for n, pos in s.shifted_lines("approaching").items():
+            self.markers[n].set_xdata([pos, pos])
+            self.marker_labels[n].set_x(pos)
+        top = float(np.nanmax([np.nanmax(f), np.nanmax(fr), 2.0]))
+        if self._top is None or not (0.3 * self._top < top < self._top):
+            # rescale (a full redraw) only when the curves leave the frame or shrink a lot
+            self._top = 1.5 * top
+            self.ax_obs.set_ylim(0, self._top)
+            self.image.value = self.blit.full()
+        else:
+            self.image.value = self.blit.frame()
+
+    def _on_fit(self, _button=None):
+        from .fitting import fit_jet_pair
+        from .measure import measure_lines
+
+        obs = self.observed_spectrum
+        name = next(iter(self.state.lines))
+        try:
+            t = measure_lines(obs, name, components=2, method="fast", medium="vacuum")
+            f = fit_jet_pair(t["z"][0], t["z"][1], t["z_err"][0], t["z_err"][1])
+        except Exception as exc:  # show the reason in the widget, never a silent failure
+            self.fit_result.value = f"<span style='color:{PALETTE['receding']}'>fit failed: {exc}</span>"
+            return None
+        self.speed_mode.value = "beta"
+        self.speed_text.value = f.beta
+        self.angle.value = float(f.value("viewing_angle"))
+        notes = ("; " + "; ".join(f.notes)) if f.notes else ""
+        self.fit_result.value = f"best fit: beta = {f.beta:.5f} &plusmn; {f.beta_err:.2g}, angle = {f.value('viewing_angle'):.3f} &plusmn; {f.error('viewing_angle'):.2g} deg{notes}"
+        return f
+
+    def _ipython_display_(self):
+        from IPython.display import display
+
+        display(self.widget)
+
+
+# ---------------------------------------------------------------------------
+# 2. Constraint plane
+# ---------------------------------------------------------------------------
+@dataclass
+class PlaneState:
+    """Measurements constraining (beta, viewing angle), and their joint solution."""
+
+    measurements: list = field(default_factory=list)
+    solution: object = None
+
+    KINDS: ClassVar[dict] = {
+        "z pair": "z_approaching, z_receding, error",
+        "single z": "z, error (approaching jet)",
+        "proper motions": "mu_a, mu_r (mas/d), error, distance (kpc), distance error",
+        "flux ratio": "R, error, alpha (continuous jet)",
+    }
+
+    def add(self, kind: str, values):
+        if kind not in self.KINDS:
+            raise ValueError(f"kind must be one of {list(self.KINDS)}, got {kind!r}")
+        need = {"z pair": 3, "single z": 2, "proper motions": 5, "flux ratio": 3}[kind]
+        vals = [float(v) for v in values]
+        if len(vals) != need:
+            raise ValueError(f"{kind} needs {need} numbers ({self.KINDS[kind]}), got {len(vals)}")
+        self.measurements.append((kind, tuple(vals)))
+        self.solution = None
+
+    def remove(self, index: int):
+        del self.measurements[index]
+        self.solution = None
+
+    def label(self, m) -> str:
+        kind, v = m
+        return f"{kind}: " + ", ".join(f"{x:g}" for x in v)
+
+    def chi2(self, m):
+        """A function (beta, theta_deg) -> chi-square of one measurement, for the bands."""
+        kind, v = m
+
+        def zmod(b, th, sign):
+            g = 1 / np.sqrt((1 - b) * (1 + b))
+            return g * (1 - sign * b * np.cos(np.radians(th))) - 1
+
+        if kind == "z pair":
+            za, zr, e = v
+            return lambda b, th: ((zmod(b, th, 1) - za) / e) ** 2 + ((zmod(b, th, -1) - zr) / e) ** 2
+        if kind == "single z":
+            z, e = v
+            return lambda b, th: ((zmod(b, th, 1) - z) / e) ** 2
+        if kind == "proper motions":
+            ma, mr, e, dist, _de = v
+            c_mas_d = SPEED_OF_LIGHT_KMS * 86400 / (dist * 3.0856775814913673e16) * 206264806.247
+
+            def f(b, th):
+                c = np.cos(np.radians(th))
+                base = b * np.sin(np.radians(th)) * c_mas_d
+                return ((base / (1 - b * c) - ma) / e) ** 2 + ((base / (1 + b * c) - mr) / e) ** 2
+
+            return f
+        R, e, alpha = v
+        return lambda b, th: ((((1 + b * np.cos(np.radians(th))) / (1 - b * np.cos(np.radians(th)))) ** (2 + alpha) - R) / e) ** 2
+
+    def solve(self):
+        from .fitting import fit_constraints
+
+        kw = {"z_pairs": [], "single_z": [], "proper_motions": [], "flux_ratios": []}
+        distance = None
+        for kind, v in self.measurements:
+            if kind == "z pair":
+                kw["z_pairs"].append((v[0], v[1], v[2], v[2]))
+            elif kind == "single z":
+                kw["single_z"].append((v[0], v[1], "approaching"))
+            elif kind == "proper motions":
+                mpd = u.mas / u.d
+                kw["proper_motions"].append((v[0] * mpd, v[2] * mpd, v[1] * mpd, v[2] * mpd))
+                distance = (v[3] * u.kpc, v[4] * u.kpc)
+            else:
+                kw["flux_ratios"].append((v[0], v[1], v[2], "jet"))
+        import warnings
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            self.solution = fit_constraints(distance=distance, **kw)
+        return self.solution
+
+
+class ConstraintPlane:
+    """The beta-viewing angle plane: measurement bands (1 sigma shaded, 2 sigma outlined) and the joint solution."""
+
+    def __init__(self, state: PlaneState | None = None):
+        import ipywidgets as W
+        from matplotlib.figure import Figure
+
+        self.state = state or PlaneState()
+        self.kind = W.Dropdown(options=list(PlaneState.KINDS), description="measurement")
+        self.values = W.Text(placeholder=PlaneState.KINDS[self.kind.value], description="values")
+        self.add_button = W.Button(description="add", icon="plus")
+        self.listing = W.Select(options=[], rows=5, description="using")
+        self.remove_button = W.Button(description="remove", icon="minus")
+        self.solve_button = W.Button(description="joint solution", icon="crosshairs")
+        self.message = W.HTML()
+        self.image = W.Image(format="png")
+        self.image.add_class("dk-figure")
+        self.fig = Figure(figsize=(6.0, 4.2), dpi=96, layout="constrained")
+        self.ax = self.fig.subplots()
+        self.kind.observe(lambda c: setattr(self.values, "placeholder", PlaneState.KINDS[c["new"]]), "value")
+        self.add_button.on_click(self._on_add)
+        self.remove_button.on_click(self._on_remove)
+        self.solve_button.on_click(self._on_solve)
+        self.widget = W.VBox(
+            [
+                W.HBox([self.kind, self.values, self.add_button]),
+                W.HBox([self.listing, W.VBox([self.remove_button, self.solve_button])]),
+                self.message,
+                self.image,
+            ]
+        )
+        self.widget.add_class("dk-plane")
+        self.redraw()
+
+    def _on_add(self, _b=None):
+        try:
+            self.state.add(self.kind.value, [v for v in self.values.value.replace(",", " ").split()])
+        except ValueError as exc:
+            self.message.value = f"<span style='color:{PALETTE['receding']}'>{exc}</span>"
+            return
+        self.message.value = ""
+        self.values.value = ""
+        self.redraw()
+
+    def _on_remove(self, _b=None):
+        if self.listing.index is not None:
+            self.state.remove(self.listing.index)
+            self.redraw()
+
+    def _on_solve(self, _b=None):
+        if not self.state.measurements:
+            self.message.value = "add a measurement first"
+            return
+        f = self.state.solve()
+        notes = ("<br>" + "<br>".join(f.notes)) if f.notes else ""
+        self.message.value = f"joint solution: beta = {f.beta:.4f} &plusmn; {f.beta_err:.2g}, angle = {f.value('viewing_angle'):.2f} &plusmn; {f.error('viewing_angle'):.2g} deg{notes}"
+        self.redraw()
+
+    def redraw(self):
+        from .plotting import plot_constraint_plane
+
+        self.listing.options = [self.state.label(m) for m in self.state.measurements]
+        self.ax.clear()
+        bands = [{"label": self.state.label(m), "chi2": self.state.chi2(m)} for m in self.state.measurements]
+        plot_constraint_plane(bands, solution=self.state.solution, ax=self.ax, n_theta=181)
+        self.image.value = _render(self.fig)
+
+    def _ipython_display_(self):
+        from IPython.display import display
+
+        display(self.widget)
+
+
+# ---------------------------------------------------------------------------
+# 3. Precessing-jet explorer
+# ---------------------------------------------------------------------------
+@dataclass
+class PrecessionState:
+    """Time series of the two moving lines and the five model parameters."""
+
+    t: np.ndarray
+    z_1: np.ndarray
+    z_2: np.ndarray
+    z_err: np.ndarray
+    beta: float = 0.25
+    inclination: float = 70.0
+    cone_angle: float = 20.0
+    period: float = 120.0
+    t0: float = 0.0
+
+    def model(self, t=None):
+        from .models import precessing_jet_redshifts
+
+        t = self.t if t is None else t
+        return precessing_jet_redshifts(t, self.beta, self.inclination * u.deg, self.cone_angle * u.deg, self.period, self.t0)
+
+    def residuals(self):
+        """Residuals of each measured line from the nearer model curve, in units of z."""
+        m1, m2 = self.model()
+        out = []
+        for z in (self.z_1, self.z_2):
+            d1, d2 = z - m1, z - m2
+            out.append(np.where(np.abs(d1) < np.abs(d2), d1, d2))
+        return out
+
+    def fit(self):
+        from .fitting import fit_precessing_jet
+
+        f = fit_precessing_jet(self.t, self.z_1, self.z_2, self.z_err)
+        for k in ("beta", "inclination", "cone_angle", "period", "t0"):
+            setattr(self, k, float(f.value(k)))
+        return f
+
+
+class PrecessionExplorer:
+    """Model curves of two precessing jets over time-series data, five sliders, a fit button, residuals."""
+
+    def __init__(self, state: PrecessionState):
+        import ipywidgets as W
+        from matplotlib.figure import Figure
+
+        self.state = s = state
+        span = float(np.ptp(s.t)) or 1.0
+        self.sliders = {
+            "beta": W.FloatSlider(value=s.beta, min=0.0, max=0.99, step=0.001, description="beta", readout_format=".3f"),
+            "inclination": W.FloatSlider(value=s.inclination, min=0.0, max=180.0, step=0.1, description="inclination"),
+            "cone_angle": W.FloatSlider(value=s.cone_angle, min=0.0, max=90.0, step=0.1, description="cone (deg)"),
+            "period": W.FloatSlider(value=s.period, min=span / 50, max=2 * span, step=0.1, description="period (d)"),
+            "t0": W.FloatSlider(value=s.t0, min=float(s.t.min()) - span, max=float(s.t.max()), step=0.1, description="t0 (d)"),
+        }
+        self.fit_button = W.Button(description="fit model", icon="crosshairs")
+        self.fit_button.add_class("dk-fit")
+        self.message = W.HTML()
+        self.image = W.Image(format="png")
+        self.image.add_class("dk-figure")
+        self.fig = Figure(figsize=(8.0, 5.0), dpi=96, layout="constrained")
+        ax, axr = self.fig.subplots(2, 1, height_ratios=[3, 1], sharex=True)
+        ax.errorbar(s.t, s.z_1, yerr=s.z_err, fmt="o", ms=3, color=PALETTE["approaching"], label="line 1")
+        ax.errorbar(s.t, s.z_2, yerr=s.z_err, fmt="o", ms=3, color=PALETTE["receding"], label="line 2")
+        self.tt = np.linspace(s.t.min(), s.t.max(), 800)
+        (self.c1,) = ax.plot([], [], color=PALETTE["approaching"], lw=1)
+        (self.c2,) = ax.plot([], [], color=PALETTE["receding"], lw=1)
+        (self.mean,) = ax.plot([], [], color=PALETTE["neutral"], lw=0.8, ls="--", label="mean = Gamma - 1 (transverse Doppler)")
+        ax.axhline(0, color="0.8", lw=0.6)
+        ax.set_ylabel("z")
+        ax.legend(fontsize=7, frameon=False, loc="upper right")
+        (self.r1,) = axr.plot([], [], "o", ms=2.5, color=PALETTE["approaching"])
+        (self.r2,) = axr.plot([], [], "o", ms=2.5, color=PALETTE["receding"])
+        axr.axhline(0, color="0.6", lw=0.6)
+        axr.set_ylabel("residual")
+        axr.set_xlabel("time (d)")
+        self.ax, self.axr = ax, axr
+        for k, w in self.sliders.items():
+            w.observe(lambda c, key=k: self._on_slider(key, c["new"]), "value")
+        self.fit_button.on_click(self._on_fit)
+        self._lim = None
+        self.blit = _Blitter(self.fig, [self.c1, self.c2, self.mean, self.r1, self.r2])
+        self.widget = W.VBox(
+            [W.HBox(list(self.sliders.values())[:3]), W.HBox([*list(self.sliders.values())[3:], self.fit_button]), self.message, self.image]
+        )
+        self.widget.add_class("dk-precession")
+        self.update()
+
+    def _on_slider(self, key, value):
+        setattr(self.state, key, float(value))
+        self.update()
+
+    def update(self):
+        s = self.state
+        m1, m2 = s.model(self.tt)
+        self.c1.set_data(self.tt, m1)
+        self.c2.set_data(self.tt, m2)
+        self.mean.set_data(self.tt, 0.5 * (m1 + m2))
+        r1, r2 = s.residuals()
+        self.r1.set_data(s.t, r1)
+        self.r2.set_data(s.t, r2)
+        lim = float(np.nanmax(np.abs(np.concatenate([r1, r2])))) or 1e-3
+        if self._lim is None or not (0.2 * self._lim < lim < self._lim):
+            self._lim = 1.5 * lim
+            self.axr.set_ylim(-self._lim, self._lim)
+            self.image.value = self.blit.full()
+        else:
+            self.image.value = self.blit.frame()
+
+    def _on_fit(self, _b=None):
+        try:
+            f = self.state.fit()
+        except Exception as exc:
+            self.message.value = f"<span style='color:{PALETTE['receding']}'>fit failed: {exc}</span>"
+            return None
+        for k, w in self.sliders.items():
+            w.unobserve_all("value")
+            w.value = getattr(self.state, k)
+            w.observe(lambda c, key=k: self._on_slider(key, c["new"]), "value")
+        self.message.value = "<br>".join(
+            [
+                f"beta {f.beta:.5f} &plusmn; {f.beta_err:.5f}; inclination {f.value('inclination'):.2f} &plusmn; {f.error('inclination'):.2f} deg; cone {f.value('cone_angle'):.2f} &plusmn; {f.error('cone_angle'):.2f} deg; period {f.value('period'):.3f} &plusmn; {f.error('period'):.3f} d",
+                *f.notes,
+            ]
+        )
+        self.update()
+        return f
+
+    def _ipython_display_(self):
+        from IPython.display import display
+
+        display(self.widget)

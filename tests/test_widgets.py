@@ -1,0 +1,121 @@
+"""In-process widget tests: set a control, check the read-outs and plotted positions against the kinematics core.
+
+Reference values come from dopplerkit.kinematics, itself checked against Rybicki & Lightman 1979
+sec. 4.1 in tests/test_kinematics.py.
+"""
+
+from __future__ import annotations
+
+import re
+
+import astropy.units as u
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+import dopplerkit as dk
+from dopplerkit.widgets import ConstraintPlane, ExplorerState, PlaneState, PrecessionExplorer, PrecessionState, SpectrumExplorer
+
+
+def _delta_text(e):
+    return float(re.search(r"class='dk-delta'>([0-9.]+)<", e.readout.value).group(1))
+
+
+def test_speed_slider_updates_readout_and_lines():
+    e = SpectrumExplorer()
+    png0 = e.image.value
+    e.speed.value = 0.6
+    e.angle.value = 0.0
+    assert_allclose(_delta_text(e), dk.doppler_factor(0.6, 0.0), rtol=1e-5)  # delta = 2 exactly at beta 0.6 head-on
+    rest = e.state.lines["H-alpha"]
+    assert_allclose(e.markers["H-alpha"].get_xdata()[0], rest / 2.0, rtol=1e-12)
+    x, _ = e.l_app.get_data()
+    assert_allclose(x, e.state.axis / 2.0, rtol=1e-12)
+    assert e.image.value != png0 and e.image.value[:4] == b"\x89PNG"
+
+
+def test_gamma_mode_and_exact_text():
+    e = SpectrumExplorer()
+    e.speed_mode.value = "gamma"
+    assert e.speed.description == "Lorentz factor"
+    e.speed_text.value = 5.0
+    e.angle.value = 30.0
+    assert_allclose(e.state.gamma, 5.0, rtol=1e-12)
+    assert_allclose(_delta_text(e), dk.doppler_factor(gamma=5.0, theta=30 * u.deg), rtol=1e-5)
+    e.speed_mode.value = "beta"
+    assert_allclose(e.speed_text.value, np.sqrt(24) / 5, rtol=1e-9)
+
+
+def test_beaming_host_and_cone():
+    e = SpectrumExplorer()
+    e.speed.value = 0.5
+    e.angle.value = 20.0
+    e.beaming.value = "blob"
+    r = e.state.readouts()
+    assert_allclose(r["boost"], dk.beaming_factor(0.5, 20 * u.deg, 0.7, "blob"), rtol=1e-12)
+    e.z_cosmo.value = 1.0
+    assert_allclose(e.state.readouts()["z_total"], dk.compose_redshift(1.0, dk.redshift(0.5, 20 * u.deg)), rtol=1e-12)
+    e.opening.value = 10.0
+    _x, f = e.l_app.get_data()
+    assert np.isfinite(f).sum() > 0.5 * f.size
+
+
+def test_fit_button_moves_controls(tmp_path):
+    from dopplerkit.models import LineComponent, synthesize_spectrum
+
+    za, zr = dk.redshift(0.2, 50 * u.deg), dk.redshift(0.2, 130 * u.deg)
+    grid = np.arange(5000.0, 9000.0, 2.0) * u.AA
+    obs = synthesize_spectrum(
+        grid,
+        [
+            LineComponent("H-alpha", z=za, fwhm=600 * u.km / u.s, strength=2),
+            LineComponent("H-alpha", z=zr, fwhm=600 * u.km / u.s, strength=2),
+        ],
+        snr=40,
+        seed=1,
+    )
+    e = SpectrumExplorer(lines=("H-alpha",), observed=obs)
+    f = e._on_fit()
+    assert abs(e.speed.value - 0.2) < 3 * f.beta_err + 1e-3
+    assert abs(e.angle.value - 50.0) < 3 * f.error("viewing_angle") + 0.5
+    assert "best fit" in e.fit_result.value
+
+
+def test_state_without_widgets():
+    s = ExplorerState.synthetic(beta=0.3, angle_deg=90.0)
+    assert_allclose(s.readouts()["z"], dk.redshift(0.3, 90 * u.deg), rtol=1e-12)  # transverse: Gamma - 1
+
+
+def test_constraint_plane_add_remove_solve():
+    p = ConstraintPlane()
+    za, zr = dk.redshift(0.4, 60 * u.deg), dk.redshift(0.4, 120 * u.deg)
+    p.kind.value = "z pair"
+    p.values.value = f"{za} {zr} 0.002"
+    p._on_add()
+    p.kind.value = "flux ratio"
+    p.values.value = "3 0.5"  # wrong count: a message, no crash
+    p._on_add()
+    assert "needs 3 numbers" in p.message.value
+    p.values.value = f"{dk.jet_counterjet_ratio(0.4, 60 * u.deg, 0.7, 'jet')} 0.3 0.7"
+    p._on_add()
+    assert len(p.listing.options) == 2
+    p._on_solve()
+    assert abs(p.state.solution.beta - 0.4) < 0.01
+    p.listing.index = 1
+    p._on_remove()
+    assert len(p.state.measurements) == 1 and p.state.solution is None
+    with pytest.raises(ValueError, match="kind must be one of"):
+        PlaneState().add("colour", [1])
+
+
+def test_precession_explorer_sliders_and_fit():
+    t = np.linspace(0, 300, 80)
+    z1, z2 = dk.models.precessing_jet_redshifts(t, 0.25, 70 * u.deg, 20 * u.deg, 110.0, 15.0)
+    st = PrecessionState(t, z1, z2, np.full(t.size, 1e-3), beta=0.2, inclination=60, cone_angle=25, period=100, t0=0)
+    pe = PrecessionExplorer(st)
+    pe.sliders["beta"].value = 0.3
+    m1, _ = st.model(pe.tt)
+    assert_allclose(pe.c1.get_ydata(), m1, rtol=1e-12)
+    f = pe._on_fit()
+    assert abs(pe.sliders["period"].value - 110.0) < 0.1
+    assert abs(f.beta - 0.25) < 1e-3
