@@ -7,22 +7,12 @@ Run:  .venv/bin/python benchmarks/bench_kinematics.py
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
+from _timing import best_of
 
 from dopplerkit import doppler_factor, redshift
 
 N = 10_000_000
-
-
-def best_of(fn, repeat=5):
-    best = np.inf
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
 
 
 def main():

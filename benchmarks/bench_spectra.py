@@ -8,25 +8,15 @@ Run:  .venv/bin/python benchmarks/bench_spectra.py
 
 from __future__ import annotations
 
-import time
-
 import astropy.units as u
 import numpy as np
+from _timing import best_of
 from astropy.nddata import StdDevUncertainty
 from specutils import Spectrum
 
 from dopplerkit.spectra import boost_arrays, boost_spectrum
 
 N = 1_000_000
-
-
-def best_of(fn, repeat=7):
-    best = np.inf
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
 
 
 def main():

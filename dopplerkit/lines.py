@@ -286,13 +286,8 @@ def _check_method(method: str) -> str:
     return method
 
 
-def air_to_vacuum(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quantity:
-    """Air wavelength -> vacuum wavelength (specutils; default Morton 2000, ApJS 130, 403).
-
-    Values below 2000 Angstrom are returned unchanged (they are vacuum by convention).
-    """
-    from specutils.utils.wcs_utils import air_to_vac
-
+def _convert(wavelength, method, fn, **kw) -> u.Quantity:
+    """Apply a specutils air/vacuum function above 2000 Angstrom; shorter wavelengths stay as they are."""
     _check_method(method)
     w = u.Quantity(wavelength)
     if not w.unit.is_equivalent(u.AA):
@@ -301,26 +296,26 @@ def air_to_vacuum(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quant
     out = aa.copy()
     ok = aa >= _VACUUM_BELOW
     if ok.any():
-        out[ok] = air_to_vac(aa[ok] * u.AA, method=method, scheme="iteration").to_value(u.AA)  # exact inverse of vac_to_air
-    out = out.reshape(np.shape(w.value))
-    return (out * u.AA).to(w.unit)
+        out[ok] = fn(aa[ok] * u.AA, method=method, **kw).to_value(u.AA)
+    return (out.reshape(np.shape(w.value)) * u.AA).to(w.unit)
+
+
+def air_to_vacuum(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quantity:
+    """Air wavelength -> vacuum wavelength (specutils; default Morton 2000, ApJS 130, 403).
+
+    Values below 2000 Angstrom are returned unchanged (they are vacuum by convention). The
+    iterative scheme makes this the exact inverse of :func:`vacuum_to_air`.
+    """
+    from specutils.utils.wcs_utils import air_to_vac
+
+    return _convert(wavelength, method, air_to_vac, scheme="iteration")
 
 
 def vacuum_to_air(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quantity:
     """Vacuum wavelength -> air wavelength (specutils; default Morton 2000). Below 2000 Angstrom: unchanged."""
     from specutils.utils.wcs_utils import vac_to_air
 
-    _check_method(method)
-    w = u.Quantity(wavelength)
-    if not w.unit.is_equivalent(u.AA):
-        raise u.UnitsError(f"wavelength must be a length, got unit {w.unit!r}")
-    aa = np.atleast_1d(w.to_value(u.AA)).astype(float)
-    out = aa.copy()
-    ok = aa >= _VACUUM_BELOW
-    if ok.any():
-        out[ok] = vac_to_air(aa[ok] * u.AA, method=method).to_value(u.AA)
-    out = out.reshape(np.shape(w.value))
-    return (out * u.AA).to(w.unit)
+    return _convert(wavelength, method, vac_to_air)
 
 
 def rest_value(

@@ -456,45 +456,48 @@ class LineFitter:
         s = self.setup
         rows = []
         i = 0
-        for _gi, grp in enumerate(s.groups):
+        for grp in s.groups:
             for k in range(s.components):
-                z, w = p[i], p[i + 1]
-                ze, we = err[i], err[i + 1]
                 for li, lidx in enumerate(grp):
-                    r = s.rest[lidx]
-                    mu = r * (1 + z) if s.wavelike else r / (1 + z)
-                    mue = r * ze if s.wavelike else r * ze / (1 + z) ** 2
-                    a, ae = p[i + 2 + li], err[i + 2 + li]
-                    flags = []
-                    if at_bound[i] or at_bound[i + 1] or at_bound[i + 2 + li]:
-                        flags.append("at_bound")
-                    if mu * w / C_KMS < 2 * dx:
-                        flags.append("unresolved")
-                    if not (0.3 < info["redchi"] < 3.0):
-                        flags.append("redchi")
-                    if not np.isfinite(ze):
-                        flags.append("no_errors")
-                    if not (ae > 0 and a / ae >= 3):
-                        flags.append("weak")
-                    rows.append(
-                        {
-                            "line": s.names[lidx],
-                            "component": s.labels[k],
-                            "rest": r,
-                            "centre": mu,
-                            "centre_err": mue,
-                            "z": z,
-                            "z_err": ze,
-                            "fwhm": w,
-                            "fwhm_err": we,
-                            "flux": (a if s.kind == "emission" else -a),
-                            "flux_err": ae,
-                            "snr": a / ae if ae > 0 else np.nan,
-                            "flags": flags,
-                        }
-                    )
+                    j = i + 2 + li
+                    bound = bool(at_bound[i] or at_bound[i + 1] or at_bound[j])
+                    rows.append(_row(s, lidx, k, p[i], err[i], p[i + 1], err[i + 1], p[j], err[j], bound, info["redchi"], dx))
                 i += 2 + len(grp)
         return rows
+
+
+def _row(s, lidx, k, z, ze, w, we, area, area_err, at_bound, redchi, dx):
+    """One table row: centre from z in the axis's sense, flags shared by both engines."""
+    r = s.rest[lidx]
+    mu = r * (1 + z) if s.wavelike else r / (1 + z)
+    mue = r * ze if s.wavelike else r * ze / (1 + z) ** 2
+    a = abs(area)
+    flags = []
+    if at_bound:
+        flags.append("at_bound")
+    if mu * w / C_KMS < 2 * dx:
+        flags.append("unresolved")
+    if not (0.3 < redchi < 3.0):
+        flags.append("redchi")
+    if not np.isfinite(ze):
+        flags.append("no_errors")
+    if not (np.isfinite(area_err) and area_err > 0 and a / area_err >= 3):
+        flags.append("weak")
+    return {
+        "line": s.names[lidx],
+        "component": s.labels[k],
+        "rest": r,
+        "centre": mu,
+        "centre_err": mue,
+        "z": z,
+        "z_err": ze,
+        "fwhm": w,
+        "fwhm_err": we,
+        "flux": a if s.kind == "emission" else -a,
+        "flux_err": area_err,
+        "snr": a / area_err if np.isfinite(area_err) and area_err > 0 else np.nan,
+        "flags": flags,
+    }
 
 
 def _window_mask(setup, x, starts, window, window_kms):
@@ -598,48 +601,18 @@ def _lmfit_fit(setup: FitSetup, x, y, sigma, starts, cont0):
 def _lmfit_rows(setup, result, dx):
     s = setup
     p = result.params
+
+    def err(par):
+        return float(par.stderr) if par.stderr is not None else np.nan
+
     rows = []
     for gi, grp in enumerate(s.groups):
         for k in range(s.components):
             zp, wp = p[f"z_g{gi}_{k}"], p[f"fwhm_g{gi}_{k}"]
             for lidx in grp:
-                pre = f"l{lidx}_{k}_"
-                r = s.rest[lidx]
-                z, ze = zp.value, (zp.stderr if zp.stderr is not None else np.nan)
-                mu = r * (1 + z) if s.wavelike else r / (1 + z)
-                mue = r * ze if s.wavelike else r * ze / (1 + z) ** 2
-                a = p[f"{pre}amplitude"]
-                ae = a.stderr if a.stderr is not None else np.nan
-                flags = []
-                for par in (zp, wp, a):
-                    if _at_bound(par):
-                        flags.append("at_bound")
-                        break
-                if mu * wp.value / C_KMS < 2 * dx:
-                    flags.append("unresolved")
-                if not (0.3 < result.redchi < 3.0):
-                    flags.append("redchi")
-                if not np.isfinite(ze):
-                    flags.append("no_errors")
-                if not (np.isfinite(ae) and ae > 0 and abs(a.value) / ae >= 3):
-                    flags.append("weak")
-                rows.append(
-                    {
-                        "line": s.names[lidx],
-                        "component": s.labels[k],
-                        "rest": r,
-                        "centre": mu,
-                        "centre_err": mue,
-                        "z": z,
-                        "z_err": ze,
-                        "fwhm": wp.value,
-                        "fwhm_err": wp.stderr if wp.stderr is not None else np.nan,
-                        "flux": abs(a.value) if s.kind == "emission" else a.value,
-                        "flux_err": ae,
-                        "snr": abs(a.value) / ae if ae and np.isfinite(ae) and ae > 0 else np.nan,
-                        "flags": flags,
-                    }
-                )
+                a = p[f"l{lidx}_{k}_amplitude"]
+                bound = any(_at_bound(par) for par in (zp, wp, a))
+                rows.append(_row(s, lidx, k, zp.value, err(zp), wp.value, err(wp), a.value, err(a), bound, result.redchi, dx))
     return rows
 
 
