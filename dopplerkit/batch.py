@@ -532,6 +532,11 @@ def run_batch(
 
     if output.suffix.lower() not in TABLE_FORMATS:
         raise ConfigError(f"--output extension must be one of {sorted(TABLE_FORMATS)}, got {output.suffix!r}")
+    if output.suffix.lower() == ".parquet":
+        try:
+            import pyarrow  # noqa: F401
+        except ImportError:
+            raise ConfigError("--output .parquet needs the pyarrow package (pip install pyarrow); or use .ecsv, .csv or .fits") from None
     if chunk_size < 1:
         raise ConfigError(f"--chunk-size must be >= 1, got {chunk_size}")
     if workers is not None and workers < 1:
