@@ -244,14 +244,22 @@ def _minimize(residual, params, **kw):
 # ---------------------------------------------------------------------------
 # Jet pair
 # ---------------------------------------------------------------------------
-def _jet_pair_model(eta, theta_deg, relativistic=True):
-    c = np.cos(theta_deg * _DEG)
+def _pair_z(eta, cos_angle, relativistic=True):
+    """Redshifts (approaching, receding) of two opposite jets at rapidity eta, cos of the approaching jet's angle.
+
+    Relativistic: 1 + z = Gamma (1 -/+ beta cos), written with Gamma - 1 = (Gamma beta)^2/(Gamma + 1)
+    so small z keep their digits. Galilean: z = -/+ beta cos (no transverse term).
+    """
     if relativistic:
         g, gb = np.cosh(eta), np.sinh(eta)
         gm1 = gb * gb / (g + 1.0)
-        return gm1 - gb * c, gm1 + gb * c
+        return gm1 - gb * cos_angle, gm1 + gb * cos_angle
     b = np.tanh(eta)
-    return -b * c, b * c
+    return -b * cos_angle, b * cos_angle
+
+
+def _jet_pair_model(eta, theta_deg, relativistic=True):
+    return _pair_z(eta, np.cos(theta_deg * _DEG), relativistic)
 
 
 def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *, relativistic: bool = True):
@@ -365,14 +373,7 @@ def _precess_cos(t, incl, cone, period, t0):
 
 
 def _precess_model(p, t, relativistic=True):
-    c1 = _precess_cos(t, p["inclination"], p["cone_angle"], p["period"], p["t0"])
-    eta = p["eta"]
-    if relativistic:
-        g, gb = np.cosh(eta), np.sinh(eta)
-        gm1 = gb * gb / (g + 1.0)
-        return gm1 - gb * c1, gm1 + gb * c1
-    b = np.tanh(eta)
-    return -b * c1, b * c1
+    return _pair_z(p["eta"], _precess_cos(t, p["inclination"], p["cone_angle"], p["period"], p["t0"]), relativistic)
 
 
 def _precess_start(t, z1, z2, e, period_range):
@@ -609,11 +610,7 @@ def fit_constraints(
         d_err_km = distance[1].to_value(u.km)
 
     def model_z(eta, th, cosfac):
-        c = np.cos(th * _DEG) * cosfac
-        if relativistic:
-            g, gb = np.cosh(eta), np.sinh(eta)
-            return gb * gb / (g + 1) - gb * c
-        return -np.tanh(eta) * c
+        return _pair_z(eta, np.cos(th * _DEG) * cosfac, relativistic)[0]
 
     def residual(p):
         eta, th = p["eta"].value, p["viewing_angle"].value
