@@ -4,9 +4,8 @@ Sources: Rybicki & Lightman 1979 (Radiative Processes in Astrophysics), sec. 4.9
 invariant, hence F_nu,obs(nu) = delta^q F_nu,emit(nu/delta) with q = 3 (blob) or 2 (continuous
 jet; Lind & Blandford 1985, ApJ 295, 358). The per-wavelength and photon exponents and the
 integrated-flux powers delta^4 / delta^3 are derived in dopplerkit/spectra.py and checked here by
-integrating a line numerically (Urry & Padovani 1995, PASP 107, 803, app. A quote delta^(3+alpha)
-for a blob's monochromatic flux, consistent with the line integral delta^4 for alpha = -1... as a
-line is not a power law, we check the integral directly).
+integrating a line numerically, not by restating the formula. Cosmological flux: Hogg 1999,
+astro-ph/9905116, eq. 22, with astropy.cosmology (a reference library) for the distance.
 """
 
 from __future__ import annotations
