@@ -144,8 +144,8 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
 # ---------------------------------------------------------------------------
 def _robust_continuum(x, y, w, degree, iters=5):
     xs = (x - x.mean()) / (np.ptp(x) / 2 or 1.0)
-    if x.size > 2000:  # a continuum needs no more than ~1000 points; evaluate on all at the end
-        step = x.size // 1000
+    if x.size > 1000:  # a continuum needs no more than ~500 points; evaluate on all at the end
+        step = x.size // 500
         coef = _robust_coef(xs[::step], y[::step], degree, iters)
     else:
         coef = _robust_coef(xs, y, degree, iters)
@@ -194,8 +194,9 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5):
     k = np.exp(-0.5 * (np.arange(-6, 7) / 2.0) ** 2)
     k /= k.sum()
     rs = np.convolve(ro, k, mode="same")
-    w = 1.0 / sig
-    xsc = (x - x.mean()) / (np.ptp(x) / 2 or 1.0)
+    w = 1.0 / sig[order]  # the Gram matrix below works on the sorted pixels
+    yo = y[order]
+    xsc = (xo - xo.mean()) / (np.ptp(xo) / 2 or 1.0)
     deg = setup.continuum_degree
     cont_cols = [xsc**d for d in range(deg + 1)]
     out = []
@@ -216,13 +217,11 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5):
         peaks = peaks[np.argsort(score[peaks])[::-1]][:n_candidates]
         cands = []
         for i in peaks:
-            half = 0.5 * score[i]
-            j1 = i
-            while j1 > 0 and score[j1] > half:
-                j1 -= 1
-            j2 = i
-            while j2 < zg.size - 1 and score[j2] > half:
-                j2 += 1
+            below = score < 0.5 * score[i]
+            left = np.flatnonzero(below[:i])
+            right = np.flatnonzero(below[i:])
+            j1 = left[-1] if left.size else 0
+            j2 = i + right[0] if right.size else zg.size - 1
             wz = max(zg[j2] - zg[j1], 2 * step)
             fwhm = float(np.clip(wz / (1 + zg[i]) * C_KMS, *setup.fwhm_range))
             cands.append((float(zg[i]), fwhm))
@@ -235,15 +234,22 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5):
             zlast = cands[-1][0] if cands else 0.0
             cands.append((zlast + 3 * sep, 500.0))
         # one Gram matrix over all candidate columns
-        cols = list(cont_cols)
+        nc0 = len(cont_cols)
+        A = np.zeros((xo.size, nc0 + len(cands) * len(rest)))
+        for d, col in enumerate(cont_cols):
+            A[:, d] = col
+        j = nc0
         for zc, fc in cands:
             for r in rest:
                 mu = r * (1 + zc) if setup.wavelike else r / (1 + zc)
                 sg = abs(mu) * fc / C_KMS / _FWHM_GAUSS
-                cols.append(sign * np.exp(-0.5 * ((x - mu) / sg) ** 2) / (sg * np.sqrt(2 * np.pi)))
-        A = np.array(cols).T * w[:, None]
+                # a Gaussian is zero to double precision beyond 9 sigma: fill only that slice
+                i0, i1 = np.searchsorted(xo, [mu - 9 * sg, mu + 9 * sg])
+                A[i0:i1, j] = sign * np.exp(-0.5 * ((xo[i0:i1] - mu) / sg) ** 2) / (sg * np.sqrt(2 * np.pi))
+                j += 1
+        A *= w[:, None]
         G = A.T @ A
-        bvec = A.T @ (y * w)
+        bvec = A.T @ (yo * w)
         nc, nl = deg + 1, len(rest)
         best = None
         for combo in combinations(range(len(cands)), setup.components):
@@ -384,8 +390,6 @@ class LineFitter:
 
     def fit_arrays(self, x, y, sigma, starts=None, cont=None):
         """Fit plain arrays (x in the set-up's axis unit). Returns (rows, info)."""
-        from scipy.optimize import least_squares
-
         s = self.setup
         if starts is None:
             x, y, sigma = _clean(x, y, sigma)
@@ -418,26 +422,11 @@ class LineFitter:
                 i += 2 + len(grp)
         scale[i:] = max(np.median(np.abs(yw)), 1e-300)
 
-        def fun(q):
-            f, _ = self._model(q * scale, xw, xs)
-            return (f - yw) / sw
+        def fun_jac(q):
+            f, J = self._model(q * scale, xw, xs, jac=True)
+            return (f - yw) / sw, J * scale[None, :] / sw[:, None]
 
-        def jac(q):
-            _, J = self._model(q * scale, xw, xs, jac=True)
-            return J * scale[None, :] / sw[:, None]
-
-        res = least_squares(
-            fun,
-            p0 / scale,
-            jac=jac,
-            bounds=(np.asarray(lo) / scale, np.asarray(hi) / scale),
-            method="trf",
-            x_scale="jac",
-            xtol=1e-12,
-            ftol=1e-12,
-            gtol=1e-12,
-            max_nfev=2000,
-        )
+        res = _levenberg_marquardt(fun_jac, p0 / scale, np.asarray(lo) / scale, np.asarray(hi) / scale)
         p = res.x * scale
         J = res.jac / scale[None, :]
         try:
@@ -498,6 +487,71 @@ def _row(s, lidx, k, z, ze, w, we, area, area_err, at_bound, redchi, dx):
         "snr": a / area_err if np.isfinite(area_err) and area_err > 0 else np.nan,
         "flags": flags,
     }
+
+
+@dataclass
+class _LMResult:
+    x: np.ndarray
+    fun: np.ndarray
+    jac: np.ndarray
+    success: bool
+    message: str
+    nfev: int
+
+
+def _levenberg_marquardt(fun_jac, x0, lo, hi, max_iter: int = 200) -> _LMResult:
+    """Projected Levenberg-Marquardt for small, well-scaled problems with box bounds.
+
+    Marquardt's diagonal scaling; a step is projected onto the bounds and accepted if it lowers
+    chi-square. Stops when an accepted step changes no parameter by more than 1e-10 of its
+    scale and chi-square by less than 1e-13 relative. For a few parameters and a few hundred
+    pixels this costs a small fraction of a general-purpose solver's overhead; on the same data
+    it reaches the same minimum as lmfit (a test checks centres to 0.01 sigma).
+    """
+    x = np.clip(np.asarray(x0, float), lo, hi)
+    r, J = fun_jac(x)
+    chi = float(r @ r)
+    lam = 1e-3
+    nfev = 1
+    message = "maximum number of iterations reached"
+    success = False
+    for _ in range(max_iter):
+        A = J.T @ J
+        g = J.T @ r
+        d = np.diag(A).copy()
+        d[d <= 0] = 1.0
+        while True:
+            try:
+                step = np.linalg.solve(A + lam * np.diag(d), -g)
+            except np.linalg.LinAlgError:
+                step = np.full_like(x, np.nan)
+            xn = np.clip(x + step, lo, hi)
+            if not np.all(np.isfinite(xn)):
+                lam *= 10.0
+                if lam > 1e12:
+                    break
+                continue
+            rn, Jn = fun_jac(xn)
+            nfev += 1
+            chin = float(rn @ rn)
+            if np.isfinite(chin) and chin <= chi:
+                break
+            lam *= 10.0
+            if lam > 1e12:
+                break
+        if lam > 1e12:
+            message = "no step lowers chi-square further"
+            success = True  # a minimum within rounding
+            break
+        dx = np.max(np.abs(xn - x) / (np.abs(x) + 1e-12))
+        dchi = chi - chin
+        x, r, J, chi = xn, rn, Jn, chin
+        lam = max(lam / 10.0, 1e-12)
+        if dx < 1e-10 or dchi <= 1e-13 * max(chi, 1e-300):
+            message = "converged"
+            success = True
+            break
+    return _LMResult(x, r, J, success, message, nfev)
 
 
 def _window_mask(setup, x, starts, window, window_kms):
