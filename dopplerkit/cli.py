@@ -57,7 +57,7 @@ def _build_parser() -> argparse.ArgumentParser:
     speed = c.add_mutually_exclusive_group()
     speed.add_argument("--beta", type=float, help="speed v/c in [0, 1)")
     speed.add_argument("--gamma", type=float, help="Lorentz factor (>= 1), exact for speeds very close to c")
-    c.add_argument("--angle", type=float, default=None, help="observer-frame viewing angle in degrees (0 = straight at us)")
+    c.add_argument("--angle", type=float, default=None, help="observer-frame viewing angle in degrees (0 = straight at us; default 90)")
     c.add_argument("--alpha", type=float, default=0.7, help="spectral index, S_nu ~ nu**-alpha (default 0.7)")
     c.add_argument("--pair", nargs=2, type=float, metavar=("Z_APPROACHING", "Z_RECEDING"), help="solve a jet/counter-jet redshift pair")
     c.add_argument("--z", type=float, default=None, help="read a single redshift as velocities (linear vs relativistic)")

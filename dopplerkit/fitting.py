@@ -376,8 +376,12 @@ def _precess_model(p, t, relativistic=True):
     return _pair_z(p["eta"], _precess_cos(t, p["inclination"], p["cone_angle"], p["period"], p["t0"]), relativistic)
 
 
-def _precess_start(t, z1, z2, e, period_range):
-    """Starting values: beta from the mean redshift, period from a periodogram, angles in closed form."""
+def _precess_start(t, z1, z2, e, period_range, relativistic=True):
+    """Starting values: beta from the mean redshift, period from a periodogram, angles in closed form.
+
+    The Galilean reading has no mean redshift to fix beta: it starts from the largest swing,
+    beta = 1.05 (|m| + a).
+    """
     from astropy.timeseries import LombScargle
 
     mean = np.median(0.5 * (z1 + z2))
@@ -398,6 +402,8 @@ def _precess_start(t, z1, z2, e, period_range):
     m, a, b = np.linalg.lstsq(X / e[:, None], d / e, rcond=None)[0]
     amp = np.hypot(a, b)
     t0 = (np.arctan2(b, a) / w) % (1 / f_best)
+    if not relativistic:
+        beta = gb = min(1.05 * (abs(m) + amp), 0.99)
     mp, ap = np.clip(m / gb, -1, 1), np.clip(amp / gb, 0, 1)
     # cos(i - c) = m' + a', cos(i + c) = m' - a'
     i_minus_c = np.degrees(np.arccos(np.clip(mp + ap, -1, 1)))
@@ -475,7 +481,7 @@ def fit_precessing_jet(
     both = np.isfinite(z1) & np.isfinite(z2)
     if both.sum() < 6:
         raise ValueError(f"need at least 6 epochs with both lines measured, got {int(both.sum())}")
-    s = _precess_start(tt[both], z1[both], z2[both], np.hypot(e1[both], e2[both]) / 2, period_range)
+    s = _precess_start(tt[both], z1[both], z2[both], np.hypot(e1[both], e2[both]) / 2, period_range, relativistic)
     if start:
         s.update(start)
     params = lmfit.Parameters()
@@ -724,6 +730,7 @@ class ModelComparison:
         lines.append(
             f"  Galilean minus relativistic: beta {dbeta:+.5f}, angle {(self.galilean.viewing_angle - self.relativistic.viewing_angle).to_value(u.deg):+.3f} deg"
         )
+        lines += [f"  note (Galilean): {n}" for n in self.galilean.notes if "Galilean reading is barely" in n]
         lines.append(
             f"  delta chi-square (Galilean - relativistic) = {self.delta_chi2:.4g}: "
             + (
@@ -755,4 +762,9 @@ def compare_models(kind: str, *args, **kwargs) -> ModelComparison:
         warnings.simplefilter("ignore", FitAtBoundWarning)  # the Galilean fit often ends at a bound; its notes say so
         gal = f(*args, relativistic=False, **kwargs)
     rel = f(*args, relativistic=True, **kwargs)
+    if gal.beta > 0.99 or not gal.beta_err < gal.beta:
+        gal.notes.append(
+            f"the Galilean reading is barely constrained (beta = {gal.beta:.4f} +/- {gal.beta_err:.2g}): with no transverse term "
+            "it cannot produce the data's mean redshift, so compare chi-square, not parameters"
+        )
     return ModelComparison(rel, gal)
