@@ -20,6 +20,7 @@ from .exceptions import (
     MediumWarning,
     NearLightSpeedWarning,
     UnresolvedLineWarning,
+    WeakLineWarning,
 )
 from .kinematics import (
     aberrate,
@@ -62,6 +63,7 @@ __all__ = [
     "MediumWarning",
     "NearLightSpeedWarning",
     "UnresolvedLineWarning",
+    "WeakLineWarning",
     "__version__",
     "aberrate",
     "apparent_speed",

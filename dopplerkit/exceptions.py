@@ -38,3 +38,7 @@ class FitAtBoundWarning(DopplerkitWarning):
 
 class MediumWarning(DopplerkitWarning):
     """An air/vacuum assumption was made because the data did not say."""
+
+
+class WeakLineWarning(DopplerkitWarning):
+    """A fitted line component has S/N < 3: it may not be there (or is blended with another)."""

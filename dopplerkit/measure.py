@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 
-from .exceptions import FitAtBoundWarning, UnresolvedLineWarning
+from .exceptions import FitAtBoundWarning, UnresolvedLineWarning, WeakLineWarning
 from .kinematics import SPEED_OF_LIGHT_KMS, beta_from_redshift
 
 __all__ = ["PROFILES", "FitSetup", "LineFitter", "measure_lines", "spectrum_sigma"]
@@ -726,6 +726,13 @@ def _warn_flags(t):
         warnings.warn(
             "a fitted line is narrower than two pixels: its width (and centre error) is not trustworthy (flag 'unresolved')",
             UnresolvedLineWarning,
+            stacklevel=3,
+        )
+    if "weak" in flags:
+        weak = [f"{n} ({c})" for n, c, fl in zip(t["line"], t["component"], t["flags"], strict=True) if "weak" in fl]
+        warnings.warn(
+            f"component(s) with line-flux S/N below 3 (flag 'weak'): {', '.join(weak)}; the line may be absent, outside the spectrum or blended",
+            WeakLineWarning,
             stacklevel=3,
         )
     if "at_bound" in flags:

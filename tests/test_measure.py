@@ -15,7 +15,7 @@ from astropy.nddata import InverseVariance, StdDevUncertainty, VarianceUncertain
 from specutils import Spectrum
 
 import dopplerkit as dk
-from dopplerkit.exceptions import UnresolvedLineWarning
+from dopplerkit.exceptions import UnresolvedLineWarning, WeakLineWarning
 from dopplerkit.measure import measure_lines
 from dopplerkit.models import LineComponent, synthesize_spectrum
 
@@ -134,9 +134,23 @@ def test_bad_sigma_and_unknown_medium():
 def test_unresolved_line_is_flagged():
     x = np.arange(6400.0, 6800.0, 4.0) * u.AA
     s = synthesize_spectrum(x, [LineComponent("H-alpha", z=0.01, fwhm=150 * u.km / u.s, strength=5.0)], snr=50, seed=1)
-    with pytest.warns(UnresolvedLineWarning):
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
         t = measure_lines(s, "H-alpha", method="fast")
     assert "unresolved" in t["flags"][0]
+    assert any(issubclass(w.category, UnresolvedLineWarning) for w in caught)
+    # an undersampled line's width and height trade off: its flux is uncertain too, and said so
+    assert "weak" in t["flags"][0] and any(issubclass(w.category, WeakLineWarning) for w in caught)
+
+
+def test_line_outside_the_spectrum_is_flagged_weak():
+    x = np.linspace(130, 100, 4000) * u.GHz  # CO 1-0 at z = 0.3 would sit at 88.7 GHz: not here
+    s = synthesize_spectrum(x, [LineComponent("CO 1-0", z=0.3, fwhm=300 * u.km / u.s, strength=2)], flux_unit="Jy", snr=30, seed=2)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        t = measure_lines(s, "CO 1-0", method="fast")
+    assert "weak" in t["flags"][0]
+    assert any(issubclass(w.category, WeakLineWarning) and "absent, outside the spectrum" in str(w.message) for w in caught)
 
 
 def test_profiles_lorentzian_voigt():
