@@ -43,7 +43,7 @@ def main():
     fitter = LineFitter.for_lines("H-alpha", "Angstrom", medium="vacuum", components=2)
     arrays = [(s.spectral_axis.value, s.flux.value, s.uncertainty.array) for s in spectra]
     t0 = time.perf_counter()
-    raw = [fitter.fit_arrays(*a) for a in arrays]
+    raw = [fitter.measure(*a) for a in arrays]
     t_raw = time.perf_counter() - t0
     dev_raw = max(
         abs(r[k]["centre"] - a["centre"][k].value) / a["centre_err"][k].value for (r, _), a in zip(raw, ref, strict=True) for k in range(2)

@@ -367,18 +367,11 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         raise ValueError(
             "wavelength medium unknown: the file does not say (MEDIUM keyword, CTYPE1 AWAV/WAVE) and [spectra] medium is not set"
         )
-    order = np.argsort(arr.axis)
-    from .measure import _clean, _starts
-
-    x, y, sig = _clean(arr.axis[order], arr.flux[order], arr.sigma[order])
-    fscale = float(np.median(np.abs(y))) or 1.0
-    y, sig = y / fscale, sig / fscale
     row: dict = {"axis_unit": arr.axis_unit}
     flags = set()
     redchi = []
     for _lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
-        starts, cont = _starts(fitter.setup, x, y, sig)
-        rows, info = fitter.fit_arrays(x, y, sig, starts=starts, cont=cont)
+        rows, info = fitter.measure(arr.axis, arr.flux, arr.sigma)
         redchi.append(info["redchi"])
         for r in rows:
             pre = f"{slug(r['line'])}_{r['component']}"
@@ -387,7 +380,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
             row[f"{pre}_z"] = float(r["z"])
             row[f"{pre}_z_err"] = float(r["z_err"])
             row[f"{pre}_fwhm"] = float(r["fwhm"])
-            row[f"{pre}_flux"] = float(r["flux"]) * fscale
+            row[f"{pre}_flux"] = float(r["flux"])
             flags.update(r["flags"])
     if cfg["model"] == "jet-pair":
         pairs = []

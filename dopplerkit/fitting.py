@@ -745,7 +745,9 @@ class ModelComparison:
         return self.report()
 
     def _repr_html_(self):
-        return "<pre>" + __import__("html").escape(self.report()) + "</pre>"
+        import html
+
+        return "<pre>" + html.escape(self.report()) + "</pre>"
 
 
 def compare_models(kind: str, *args, **kwargs) -> ModelComparison:

@@ -98,8 +98,8 @@ class FitSetup:
             self.labels = ["approaching", "receding"] if self.components == 2 else [f"c{k + 1}" for k in range(self.components)]
 
 
-def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, continuum_degree, z_range, method):
-    from .lines import Line, rest_value
+def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, continuum_degree, z_range):
+    from .lines import Line, get_line, rest_value
 
     if isinstance(lines, (str, Line, u.Quantity)):
         lines = [lines]
@@ -122,7 +122,7 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
             names.append(f"{ln:g}")
         else:
             q = rest_value(ln, unit, medium=medium)
-            names.append(getattr(ln, "name", None) or __import__("dopplerkit.lines", fromlist=["get_line"]).get_line(ln).name)
+            names.append(get_line(ln).name)
         rest.append(q.value)
     groups = [list(range(len(names)))] if tie else [[i] for i in range(len(names))]
     return FitSetup(
@@ -381,8 +381,24 @@ class LineFitter:
         unit = u.Unit(spectral_unit)
         if unit.is_equivalent(u.m) and medium not in ("air", "vacuum"):
             raise ValueError(f"medium must be 'air' or 'vacuum' for a wavelength axis, got {medium!r}")
-        setup = _make_setup(lines, unit, medium, components, tie, kind, "gaussian", "polynomial", continuum_degree, z_range, "fast")
+        setup = _make_setup(lines, unit, medium, components, tie, kind, "gaussian", "polynomial", continuum_degree, z_range)
         return cls(setup, window, window_kms)
+
+    def measure(self, x, y, sigma):
+        """Everything for one spectrum as plain arrays: clean, sort, scale, start, fit. Returns (rows, info).
+
+        NaN pixels are dropped; flux and flux_err in the rows are in the units of ``y``.
+        """
+        x, y, sigma = _clean(x, y, sigma)
+        order = np.argsort(x)
+        fscale = float(np.median(np.abs(y))) or float(np.median(sigma)) or 1.0
+        x, y, sigma = x[order], y[order] / fscale, sigma[order] / fscale
+        starts, cont = _starts(self.setup, x, y, sigma)
+        rows, info = self.fit_arrays(x, y, sigma, starts=starts, cont=cont)
+        for r in rows:
+            r["flux"] *= fscale
+            r["flux_err"] *= fscale
+        return rows, info
 
     def window_mask(self, x, starts):
         """Pixels within ``window`` FWHM (and ``window_kms``) of a started component."""
@@ -818,7 +834,7 @@ def measure_lines(
         raise ValueError(
             "the medium of the wavelength axis is unknown (no meta['medium'], no FITS CTYPE AWAV/WAVE): pass medium='air' or 'vacuum' so air and vacuum rest wavelengths are not mixed"
         )
-    setup = _make_setup(lines, unit, med, components, tie, kind, profile, continuum, continuum_degree, z_range, method)
+    setup = _make_setup(lines, unit, med, components, tie, kind, profile, continuum, continuum_degree, z_range)
     x, y, sig = _clean(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), spectrum.mask)
     order = np.argsort(x)
     # work in units of the typical flux so lmfit's numerical derivatives are well scaled
