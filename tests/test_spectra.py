@@ -15,6 +15,8 @@ import numpy as np
 import pytest
 from astropy.nddata import InverseVariance, StdDevUncertainty, VarianceUncertainty
 from astropy.tests.helper import assert_quantity_allclose
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 from specutils import Spectrum
 
@@ -145,3 +147,23 @@ def test_resample_conserves_flux(spectrum_angstrom):
     r = resample(spectrum_angstrom, grid)
     sub = spectrum_angstrom[5100 * u.AA : 6900 * u.AA]
     assert_allclose(_integral(r), _integral(sub), rtol=2e-3)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    beta=st.floats(0.0, 0.99),
+    angle=st.floats(0.0, 180.0),
+    beaming=st.sampled_from([None, "blob", "jet"]),
+    z_cosmo=st.floats(0.0, 5.0),
+    unit=st.sampled_from(["Angstrom", "GHz", "keV"]),
+)
+def test_boost_deboost_round_trip_property(beta, angle, beaming, z_cosmo, unit):
+    # deboost_spectrum is the exact inverse of boost_spectrum for any speed, angle, geometry and host z (common practice)
+    axis = np.linspace(1.0, 2.0, 50) * u.Unit(unit)
+    flux_unit = {"Angstrom": "erg / (s cm2 Angstrom)", "GHz": "Jy", "keV": "ph / (s cm2 keV)"}[unit]
+    s = Spectrum(flux=np.linspace(1, 3, 50) * u.Unit(flux_unit), spectral_axis=axis, meta={"medium": "vacuum"})
+    back = deboost_spectrum(
+        boost_spectrum(s, beta, angle * u.deg, beaming=beaming, z_cosmo=z_cosmo), beta, angle * u.deg, beaming=beaming, z_cosmo=z_cosmo
+    )
+    assert_allclose(back.spectral_axis.value, axis.value, rtol=1e-12)
+    assert_allclose(back.flux.value, s.flux.value, rtol=1e-10)
