@@ -388,12 +388,17 @@ class SpectrumExplorer:
         self._sync_state()
         s = self.state
         r = s.readouts()
-        self.readout.value = (
-            f"<span class='dk-readout-text'>Lorentz factor {r['gamma']:.5f} &nbsp; | &nbsp; Doppler factor "
-            f"<b class='dk-delta'>{r['delta']:.5f}</b> &nbsp; | &nbsp; z (jet) {r['z']:+.5f}, counter-jet {r['z_counterjet']:+.5f}, "
-            f"total with host {r['z_total']:+.5f} &nbsp; | &nbsp; apparent speed {r['apparent_speed']:.4f} c &nbsp; | &nbsp; "
-            f"boost ({r['boost_geometry']}, alpha {s.alpha:g}) {r['boost']:.4g}</span>"
-        )
+        cells = [
+            ("Lorentz factor", f"{r['gamma']:.5f}"),
+            ("Doppler factor", f"<b class='dk-delta'>{r['delta']:.5f}</b>"),
+            ("z jet / counter-jet", f"{r['z']:+.5f} / {r['z_counterjet']:+.5f}"),
+            ("z with host", f"{r['z_total']:+.5f}"),
+            ("apparent speed", f"{r['apparent_speed']:.4f} c"),
+            (f"boost ({r['boost_geometry']}, alpha {s.alpha:g})", f"{r['boost']:.4g}"),
+        ]
+        head = "".join(f"<th style='padding:0 12px 0 0;font-weight:normal;color:#666'>{k}</th>" for k, _ in cells)
+        body = "".join(f"<td style='padding:0 12px 0 0'>{v}</td>" for _, v in cells)
+        self.readout.value = f"<table class='dk-readout-text'><tr>{head}</tr><tr>{body}</tr></table>"
         x, f = s.observed("approaching")
         self.l_app.set_data(x, f)
         xr, fr = s.observed("receding")
