@@ -260,24 +260,6 @@ class _ArrayColumns:
         return self._Col(self._columns[name], None if unit is None else _parse_unit(unit))
 
 
-class _FitsColumns:
-    """The little of the Table interface that _from_table needs, straight from a BinTableHDU (fast)."""
-
-    class _Col:
-        def __init__(self, data, unit):
-            self.value = data
-            self.unit = unit
-
-    def __init__(self, hdu):
-        self._data = hdu.data
-        self._units = {c.name: (c.unit or None) for c in hdu.columns}
-        self.colnames = [c.name for c in hdu.columns]
-
-    def __getitem__(self, name):
-        unit = self._units[name]
-        return self._Col(np.asarray(self._data[name], dtype=float), None if unit is None else _parse_unit(unit))
-
-
 def _from_table(t, path, spectral_unit, flux_unit):
     names = {c.lower(): c for c in t.colnames}
     axis_col = next((names[n] for n in AXIS_NAMES if n in names), None)
@@ -379,7 +361,10 @@ def read_arrays(
                         raise SpectrumReadError(f"{path}: tabular FITS needs a binary table in HDU 1")
                     hdr = hdul[1].header
                     file_medium = hdr.get("MEDIUM") or hdul[0].header.get("MEDIUM")
-                    axis, au, flux, fu, sigma = _from_table(_FitsColumns(hdul[1]), path, spectral_unit, flux_unit)
+                    hdu = hdul[1]
+                    cols = {c.name: np.asarray(hdu.data[c.name], dtype=float) for c in hdu.columns}
+                    units = {c.name: (c.unit or None) for c in hdu.columns}
+                    axis, au, flux, fu, sigma = _from_table(_ArrayColumns(cols, units), path, spectral_unit, flux_unit)
                 else:
                     axis, au, flux, fu, sigma, file_medium = _read_wcs1d(hdul, path, spectral_unit, flux_unit)
                 meta = {k: hdul[0].header[k] for k in ("OBJECT", "DATE-OBS", "MJD-OBS") if k in hdul[0].header}

@@ -56,3 +56,14 @@ def test_fast_reader_falls_back_and_detects_truncation(tmp_path):
     (tmp_path / "t.fits").write_bytes(whole[: len(whole) - 3000])
     with pytest.raises(SpectrumReadError, match="truncated"):
         read_arrays(tmp_path / "t.fits", "tabular-fits")
+
+
+def test_gzipped_table_goes_through_astropy(spec, tmp_path):
+    import gzip
+
+    plain = write_spectrum(spec, tmp_path / "s.fits")
+    gz = tmp_path / "s.fits.gz"
+    gz.write_bytes(gzip.compress(plain.read_bytes()))
+    a, b = read_arrays(plain), read_arrays(gz)
+    assert_allclose(b.flux, a.flux, rtol=0)
+    assert b.medium == a.medium == "air" and b.flux_unit == a.flux_unit
