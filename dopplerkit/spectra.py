@@ -33,6 +33,7 @@ wavelengths.
 from __future__ import annotations
 
 import copy
+import functools
 from typing import Literal
 
 import astropy.units as u
@@ -119,6 +120,28 @@ def _check_beaming(beaming) -> float:
     return BEAMING[beaming][0]
 
 
+@functools.lru_cache(maxsize=64)
+def beaming_exponent(flux_unit, beaming: Beaming = None) -> float:
+    """Power of the Doppler factor that multiplies a flux density of this unit under ``beaming``.
+
+    ``F_x,obs(x_obs) = delta**n F_x,emit(x_emit)`` with n = q + 1 - k (minus 1 for photon fluxes),
+    q = 3 (blob) or 2 (continuous jet), k = +1 per unit frequency/energy/wavenumber, -1 per unit
+    wavelength (module notes). 0 for ``beaming=None``. Raises UnitsError when the unit is not a
+    flux (or luminosity) density and beaming is asked for.
+    """
+    q = _check_beaming(beaming)
+    if beaming is None:
+        return 0.0
+    scaling = flux_scaling(u.Unit(flux_unit))
+    if scaling is None:
+        raise u.UnitsError(
+            f"flux unit {u.Unit(flux_unit)!r} is not a flux (or luminosity) density, so beaming={beaming!r} cannot be applied; "
+            "give the flux per unit frequency, wavelength or energy (e.g. erg/s/cm2/Angstrom, Jy, ph/s/cm2/keV) or use beaming=None"
+        )
+    k, photon = scaling
+    return q + 1.0 - k - (1.0 if photon else 0.0)
+
+
 def _scalar(x, name):
     a = np.asarray(getattr(x, "value", x))
     if a.size != 1:
@@ -130,7 +153,7 @@ def _scalar(x, name):
 
 def _factors(beta, theta, gamma, beaming, z_cosmo, flux_unit, axis_unit, cosmology, inverse):
     """(axis multiplier for frequency-like axes, flux multiplier, delta, record)."""
-    q = _check_beaming(beaming)
+    _check_beaming(beaming)
     _scalar(theta, "theta")
     if gamma is None:
         _scalar(beta, "beta")
@@ -142,22 +165,15 @@ def _factors(beta, theta, gamma, beaming, z_cosmo, flux_unit, axis_unit, cosmolo
     if not np.isfinite(zc) or zc <= -1:
         raise ValueError(f"z_cosmo must be a finite number > -1, got {z_cosmo!r}")
     _axis_k(axis_unit)
-    scaling = flux_scaling(flux_unit)
-    flux_factor = 1.0
-    if beaming is not None or cosmology is not None:
+    flux_factor = delta ** beaming_exponent(flux_unit, beaming)
+    if cosmology is not None:
+        scaling = flux_scaling(flux_unit)
         if scaling is None:
-            raise u.UnitsError(
-                f"flux unit {flux_unit!r} is not a flux (or luminosity) density, so beaming={beaming!r}"
-                f"{' and cosmology' if cosmology is not None else ''} cannot be applied; give the flux per unit "
-                "frequency, wavelength or energy (e.g. erg/s/cm2/Angstrom, Jy, ph/s/cm2/keV) or use beaming=None"
-            )
+            raise u.UnitsError(f"flux unit {flux_unit!r} is not a flux (or luminosity) density, so cosmology cannot be applied")
         k, photon = scaling
-        if beaming is not None:
-            flux_factor *= delta ** (q + 1 - k - (1 if photon else 0))
-        if cosmology is not None:
-            dl = cosmology.luminosity_distance(zc)
-            flux_factor *= (1.0 + zc) ** (k + (1 if photon else 0))
-            flux_factor /= (4 * np.pi * dl**2).to_value(u.cm**2)
+        dl = cosmology.luminosity_distance(zc)
+        flux_factor *= (1.0 + zc) ** (k + (1 if photon else 0))
+        flux_factor /= (4 * np.pi * dl**2).to_value(u.cm**2)
     axis_factor = delta / (1.0 + zc)
     if inverse:
         axis_factor, flux_factor = 1.0 / axis_factor, 1.0 / flux_factor
@@ -344,7 +360,10 @@ def boost_arrays(
     axis_unit, flux_unit : unit or str
         Units of the arrays (vacuum wavelengths if a length).
     beta, theta, gamma, beaming, z_cosmo
-        As in :func:`boost_spectrum`; ``inverse=True`` gives :func:`deboost_spectrum`.
+        As in :func:`boost_spectrum`. Speed and angle may be arrays: the outputs then have their
+        broadcast shape followed by the shape of ``axis`` (one observed spectrum per direction).
+    inverse : bool
+        True gives :func:`deboost_spectrum`.
 
     Returns
     -------
@@ -352,12 +371,22 @@ def boost_arrays(
         New arrays in the same units.
     """
     axis_unit = u.Unit(axis_unit)
-    fu = u.Unit(flux_unit) if flux_unit is not None else u.one
-    af, ff, _ = _factors(beta, theta, gamma, beaming, z_cosmo, fu, axis_unit, None, inverse)
     k = _axis_k(axis_unit)
-    new_axis = np.multiply(axis, af if k == 1 else 1.0 / af)
-    new_flux = None if flux is None else (np.multiply(flux, ff) if ff != 1.0 else np.array(flux, copy=True))
-    return new_axis, new_flux
+    n = beaming_exponent(u.Unit(flux_unit) if flux_unit is not None else u.one, beaming)
+    zc = float(np.asarray(getattr(z_cosmo, "value", z_cosmo)))
+    if not np.isfinite(zc) or zc <= -1:
+        raise ValueError(f"z_cosmo must be a finite number > -1, got {z_cosmo!r}")
+    delta = np.asarray(doppler_factor(beta, theta, gamma=gamma))
+    if delta.ndim:
+        delta = delta[..., None]  # one spectrum per speed/angle, along the last axis
+    axis_factor = delta / (1.0 + zc)
+    flux_factor = delta**n
+    if inverse:
+        axis_factor, flux_factor = 1.0 / axis_factor, 1.0 / flux_factor
+    new_axis = np.multiply(axis, axis_factor if k == 1 else 1.0 / axis_factor)
+    if flux is None:
+        return new_axis, None
+    return new_axis, (np.multiply(flux, flux_factor) if n != 0 else np.broadcast_to(flux, new_axis.shape).copy())
 
 
 RESAMPLERS = {

@@ -115,6 +115,7 @@ class ExplorerState:
     axis: np.ndarray
     flux: np.ndarray
     axis_unit: str = "Angstrom"
+    flux_unit: str = "erg / (s cm2 Angstrom)"
     lines: dict = field(default_factory=dict)
     beta: float = 0.26
     angle_deg: float = 79.0
@@ -149,11 +150,12 @@ class ExplorerState:
             axis=np.asarray(spectrum.spectral_axis.value)[order],
             flux=np.asarray(spectrum.flux.value)[order],
             axis_unit=unit.to_string(),
+            flux_unit=spectrum.flux.unit.to_string(),
             lines=rest,
             **kw,
         )
 
-    # -- physics, all from the kinematics core ------------------------------------------
+    # -- physics, all from the kinematics core and dopplerkit.spectra -------------------
     @property
     def gamma(self) -> float:
         return float(lorentz_factor(self.beta))
@@ -183,42 +185,31 @@ class ExplorerState:
             "boost_geometry": q if self.beaming else "none",
         }
 
-    def _one(self, cos_psi):
-        """Observed axis and flux for one direction (cos of the angle to the line of sight)."""
-        th = np.arccos(np.clip(cos_psi, -1, 1))
-        d = float(doppler_factor(self.beta, th))
-        k = d / (1 + self.z_cosmo)
-        wavelike = u.Unit(self.axis_unit).is_equivalent(u.m)
-        ax = self.axis / k if wavelike else self.axis * k
-        if self.beaming is None:
-            f = self.flux
-        else:
-            q = 3.0 if self.beaming == "blob" else 2.0
-            f = self.flux * d ** (q + (2.0 if wavelike else 0.0))  # F_lambda picks up delta^2 (see dopplerkit.spectra)
-        return ax, f
-
     def observed(self, which: str = "approaching"):
         """Observed (axis, flux) of the approaching or receding jet, averaged over the cone if opening_deg > 0."""
         from .models import cone_directions
+        from .spectra import boost_arrays
 
         th = self.angle_deg if which == "approaching" else 180.0 - self.angle_deg
+        kw = {"beaming": self.beaming, "z_cosmo": self.z_cosmo}
         if self.opening_deg <= 0:
-            return self._one(np.cos(np.radians(th)))
+            return boost_arrays(self.axis, self.flux, self.axis_unit, self.flux_unit, self.beta, th * u.deg, **kw)
         cps, w = cone_directions(th * u.deg, self.opening_deg * u.deg, n_polar=6, n_azimuth=12)
-        grid = self._one(np.cos(np.radians(th)))[0]
+        axes, fluxes = boost_arrays(self.axis, self.flux, self.axis_unit, self.flux_unit, self.beta, np.arccos(np.clip(cps, -1, 1)), **kw)
+        grid = boost_arrays(self.axis, None, self.axis_unit, None, self.beta, th * u.deg, z_cosmo=self.z_cosmo)[0]
         total = np.zeros_like(grid)
-        for c, wi in zip(cps, w, strict=True):
-            ax, f = self._one(c)
-            total += wi * np.interp(grid, ax, f, left=np.nan, right=np.nan)
+        for ax, f, wi in zip(axes, fluxes, w, strict=True):
+            order = np.argsort(ax)  # frequency-like axes come out in the input's order
+            total += wi * np.interp(grid, ax[order], f[order], left=np.nan, right=np.nan)
         return grid, total
 
     def shifted_lines(self, which: str = "approaching") -> dict:
         """Observed positions of the lines (label -> position in axis unit)."""
+        from .spectra import boost_arrays
+
         th = self.angle_deg if which == "approaching" else 180.0 - self.angle_deg
-        d = float(doppler_factor(self.beta, th * u.deg))
-        k = d / (1 + self.z_cosmo)
-        wavelike = u.Unit(self.axis_unit).is_equivalent(u.m)
-        return {n: (r / k if wavelike else r * k) for n, r in self.lines.items()}
+        pos, _ = boost_arrays(np.array(list(self.lines.values())), None, self.axis_unit, None, self.beta, th * u.deg, z_cosmo=self.z_cosmo)
+        return dict(zip(self.lines, pos.tolist(), strict=True))
 
 
 class SpectrumExplorer:

@@ -167,3 +167,15 @@ def test_boost_deboost_round_trip_property(beta, angle, beaming, z_cosmo, unit):
     )
     assert_allclose(back.spectral_axis.value, axis.value, rtol=1e-12)
     assert_allclose(back.flux.value, s.flux.value, rtol=1e-10)
+
+
+def test_arrays_broadcast_over_angles(spectrum_angstrom):
+    # one observed spectrum per angle, each equal to the scalar call (common practice: broadcasting)
+    th = np.array([0.1, 1.0, 2.5])
+    x, f = spectrum_angstrom.spectral_axis.value, spectrum_angstrom.flux.value
+    ax, fl = boost_arrays(x, f, "AA", "erg / (s cm2 Angstrom)", 0.4, th, beaming="blob")
+    assert ax.shape == fl.shape == (3, x.size)
+    for i, t in enumerate(th):
+        a1, f1 = boost_arrays(x, f, "AA", "erg / (s cm2 Angstrom)", 0.4, t, beaming="blob")
+        assert_allclose(ax[i], a1, rtol=1e-15)
+        assert_allclose(fl[i], f1, rtol=1e-15)
