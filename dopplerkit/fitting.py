@@ -26,7 +26,7 @@ import astropy.units as u
 import numpy as np
 
 from .exceptions import DegenerateGeometryWarning, FitAtBoundWarning
-from .kinematics import SPEED_OF_LIGHT_KMS, _dimensionless, solve_jet_pair
+from .kinematics import SPEED_OF_LIGHT_KMS, _counterjet_ratio, _dimensionless, _proper_motion_rates, solve_jet_pair
 
 __all__ = [
     "KinematicFit",
@@ -39,6 +39,7 @@ __all__ = [
 ]
 
 _DEG = np.pi / 180.0
+_KPC_KM = (1 * u.kpc).to_value(u.km)
 
 
 def _add_speed(params, beta0):
@@ -621,22 +622,20 @@ def fit_constraints(
     def residual(p):
         eta, th = p["eta"].value, p["viewing_angle"].value
         b = np.tanh(eta)
-        cth = np.cos(th * _DEG)
+        omb = 2.0 / (np.exp(2.0 * eta) + 1.0)  # 1 - tanh(eta), exact near c
         r = []
         for za, zr, ea, er in zp:
             r += [(model_z(eta, th, 1) - za) / ea, (model_z(eta, th, -1) - zr) / er]
         for z, e, j in sz:
             r.append((model_z(eta, th, 1 if j == "approaching" else -1) - z) / e)
         if pm:
-            dk = p["distance_kpc"].value * 3.0856775814913673e16
+            dist_km = p["distance_kpc"].value * _KPC_KM
+            mu_a, mu_r = _proper_motion_rates(b, omb, th * _DEG, dist_km / SPEED_OF_LIGHT_KMS)
             for ma, ea, mr, er in pm:
-                sinth = np.sin(th * _DEG)
-                base = b * sinth * SPEED_OF_LIGHT_KMS / dk
-                r += [(base / (1 - b * cth) - ma) / ea, (base / (1 + b * cth) - mr) / er]
-            r.append((dk - d_km) / d_err_km)
+                r += [(mu_a - ma) / ea, (mu_r - mr) / er]
+            r.append((dist_km - d_km) / d_err_km)
         for R, Re, pexp in fr:
-            model = ((1 + b * cth) / (1 - b * cth)) ** pexp
-            r.append((model - R) / Re)
+            r.append((_counterjet_ratio(b, omb, th * _DEG, pexp) - R) / Re)
         if "beta" in priors:
             r.append((b - priors["beta"][0]) / priors["beta"][1])
         if "viewing_angle" in priors:
@@ -647,7 +646,7 @@ def fit_constraints(
     _add_speed(params, 0.5)
     params.add("viewing_angle", value=45.0, min=0.0, max=180.0)
     if pm:
-        params.add("distance_kpc", value=d_km / 3.0856775814913673e16, min=1e-6)
+        params.add("distance_kpc", value=d_km / _KPC_KM, min=1e-6)
     # grid start, then refine the best two separated minima
     grid = []
     for b in (0.05, 0.2, 0.4, 0.6, 0.8, 0.9, 0.97, 0.995):

@@ -52,6 +52,7 @@ __all__ = [
     "doppler_factor",
     "jet_counterjet_ratio",
     "lorentz_factor",
+    "proper_motions",
     "redshift",
     "redshift_locus",
     "solve_jet_pair",
@@ -478,10 +479,51 @@ def jet_counterjet_ratio(beta=None, theta=0.0, alpha: ArrayLike = 0.0, geometry:
     p = _geometry_exponent(alpha, geometry)
     b, _, omb = _speed(beta, gamma)
     th = _angle(theta, "theta")
+    return _out(_counterjet_ratio(b, omb, th, p))
+
+
+def _counterjet_ratio(b, omb, th, p):
+    """Plain-array R = ((1 + beta cos)/(1 - beta cos))**p, cancellation-free (shared with the fits)."""
     with np.errstate(invalid="ignore", divide="ignore"):
-        d_app = _one_minus_beta_cos(b, omb, th)
-        d_rec = _one_minus_beta_cos(b, omb, np.pi - th)
-        return _out(np.power(d_rec / d_app, p))
+        return np.power(_one_minus_beta_cos(b, omb, np.pi - th) / _one_minus_beta_cos(b, omb, th), p)
+
+
+def _proper_motion_rates(b, omb, th, d_over_c):
+    """Plain-array angular rates (rad/s) of the approaching and receding components; d_over_c in s."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        bsin = b * np.sin(th) / d_over_c
+        return bsin / _one_minus_beta_cos(b, omb, th), bsin / _one_minus_beta_cos(b, omb, np.pi - th)
+
+
+def proper_motions(beta=None, theta=0.0, distance: u.Quantity | None = None, *, gamma=None):
+    """Proper motions of two oppositely ejected components of equal speed.
+
+    Parameters
+    ----------
+    beta : float, array or Quantity
+        Speed v/c in [0, 1). Alternatively ``gamma=``.
+    theta : float, array or Quantity
+        Observer-frame viewing angle of the approaching component (0 = straight at us).
+    distance : Quantity (length)
+        Distance to the source.
+
+    Returns
+    -------
+    mu_approaching, mu_receding : Quantity (mas/d)
+        mu = beta sin(theta) c/(D (1 -/+ beta cos theta)) (Mirabel & Rodriguez 1994, Nature 371, 46);
+        the inverse is :func:`solve_proper_motions`.
+    """
+    if not isinstance(distance, u.Quantity):
+        raise TypeError(f"distance must be an astropy Quantity with a unit of length, got {type(distance).__name__} {distance!r}")
+    try:
+        d = np.asarray(distance.to_value(u.km), dtype=float)
+    except u.UnitConversionError as exc:
+        raise u.UnitsError(f"distance must be a length (e.g. kpc), got unit {distance.unit!r}") from exc
+    b, _, omb = _speed(beta, gamma)
+    th = _angle(theta, "theta")
+    ma, mr = _proper_motion_rates(b, omb, th, d / SPEED_OF_LIGHT_KMS)
+    rate = u.rad / u.s
+    return (ma * rate).to(u.mas / u.d), (mr * rate).to(u.mas / u.d)
 
 
 # ---------------------------------------------------------------------------

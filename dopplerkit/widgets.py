@@ -467,31 +467,26 @@ class PlaneState:
         return f"{kind}: " + ", ".join(f"{x:g}" for x in v)
 
     def chi2(self, m):
-        """A function (beta, theta_deg) -> chi-square of one measurement, for the bands."""
+        """A function (beta, theta_deg) -> chi-square of one measurement, for the bands (models from dopplerkit.kinematics)."""
+        from .kinematics import jet_counterjet_ratio, proper_motions
+
         kind, v = m
-
-        def zmod(b, th, sign):
-            g = 1 / np.sqrt((1 - b) * (1 + b))
-            return g * (1 - sign * b * np.cos(np.radians(th))) - 1
-
         if kind == "z pair":
             za, zr, e = v
-            return lambda b, th: ((zmod(b, th, 1) - za) / e) ** 2 + ((zmod(b, th, -1) - zr) / e) ** 2
+            return lambda b, th: ((redshift(b, th * u.deg) - za) / e) ** 2 + ((redshift(b, (180 - th) * u.deg) - zr) / e) ** 2
         if kind == "single z":
             z, e = v
-            return lambda b, th: ((zmod(b, th, 1) - z) / e) ** 2
+            return lambda b, th: ((redshift(b, th * u.deg) - z) / e) ** 2
         if kind == "proper motions":
             ma, mr, e, dist, _de = v
-            c_mas_d = SPEED_OF_LIGHT_KMS * 86400 / (dist * 3.0856775814913673e16) * 206264806.247
 
             def f(b, th):
-                c = np.cos(np.radians(th))
-                base = b * np.sin(np.radians(th)) * c_mas_d
-                return ((base / (1 - b * c) - ma) / e) ** 2 + ((base / (1 + b * c) - mr) / e) ** 2
+                mu_a, mu_r = proper_motions(b, th * u.deg, dist * u.kpc)
+                return ((mu_a.value - ma) / e) ** 2 + ((mu_r.value - mr) / e) ** 2
 
             return f
         R, e, alpha = v
-        return lambda b, th: ((((1 + b * np.cos(np.radians(th))) / (1 - b * np.cos(np.radians(th)))) ** (2 + alpha) - R) / e) ** 2
+        return lambda b, th: ((jet_counterjet_ratio(b, th * u.deg, alpha, "jet") - R) / e) ** 2
 
     def solve(self):
         from .fitting import fit_constraints

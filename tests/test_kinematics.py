@@ -262,6 +262,19 @@ def test_proper_motions_published_case():
         dk.solve_proper_motions(17.6 * u.mas / u.d, 9.0 * u.mas / u.d, 14 * u.kpc)
 
 
+def test_forward_proper_motions_published_case():
+    # Mirabel & Rodriguez 1994 (values from memory): beta = 0.92, theta = 70 deg at 12.5 kpc give about
+    # 17.6 and 9.0 mas/d; and proper_motions inverts solve_proper_motions exactly.
+    mu_a, mu_r = dk.proper_motions(0.92, 70 * u.deg, 12.5 * u.kpc)
+    assert_quantity_allclose(mu_a, 17.6 * u.mas / u.d, rtol=0.03)
+    assert_quantity_allclose(mu_r, 9.0 * u.mas / u.d, rtol=0.03)
+    b, th = dk.solve_proper_motions(mu_a, mu_r, 12.5 * u.kpc)
+    assert_allclose(b, 0.92, rtol=1e-12)
+    assert_quantity_allclose(th, 70 * u.deg, rtol=1e-12)
+    with pytest.raises(TypeError, match="distance must be an astropy Quantity"):
+        dk.proper_motions(0.5, 1.0, 12.5)
+
+
 @given(beta=st.floats(0.05, 0.95), th=st.floats(5.0, 85.0))
 def test_proper_motions_round_trip(beta, th):
     # MR94: mu_{a,r} = beta sin theta c/(D (1 -/+ beta cos theta)).
