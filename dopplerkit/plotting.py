@@ -73,7 +73,8 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
     ----------
     bands : list of dict
         Each ``{"label": str, "chi2": callable(beta_grid, theta_grid_deg) -> chi-square}``;
-        the band is chi-square <= 1 (1 sigma) shaded, <= 4 outlined.
+        the band is chi-square <= 1 (1 sigma) shaded, <= 4 outlined; a constraint narrower than the
+        grid is marked at its best grid point.
     solution : KinematicFit, optional
         Marked with its error bars.
     """
@@ -91,8 +92,12 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
     for k, band in enumerate(bands):
         c2 = band["chi2"](B, T)
         col = colours[k % len(colours)]
-        ax.contourf(T, B, c2, levels=[-1, 1], colors=[col], alpha=0.35)
-        ax.contour(T, B, c2, levels=[4], colors=[col], linewidths=0.8)
+        if np.nanmin(c2) <= 1:
+            ax.contourf(T, B, c2, levels=[-1, 1], colors=[col], alpha=0.35)
+            ax.contour(T, B, c2, levels=[4], colors=[col], linewidths=0.8)
+        else:  # narrower than the grid (an exactly determined pair): mark its best point instead
+            i = np.unravel_index(np.nanargmin(c2), c2.shape)
+            ax.plot(T[i], B[i], "D", ms=6, mfc="none", mec=col)
         ax.plot([], [], color=col, lw=6, alpha=0.5, label=band.get("label", f"measurement {k + 1}"))
     if solution is not None:
         ax.errorbar(
