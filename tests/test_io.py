@@ -1,4 +1,8 @@
-"""Spectrum files: round trips through every layout, the fast FITS table reader against astropy.io.fits."""
+"""Spectrum files: round trips through every layout, the fast FITS table reader against astropy.io.fits.
+
+No physics here: the checks are round trips and agreement with astropy.io.fits as a reference
+library (common practice, no source).
+"""
 
 from __future__ import annotations
 

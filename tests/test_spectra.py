@@ -142,7 +142,7 @@ def test_arrays_path_matches_spectrum(spectrum_angstrom):
 
 
 def test_resample_conserves_flux(spectrum_angstrom):
-    # specutils FluxConservingResampler conserves the integral (Carnall 2017, arXiv:1705.05165; specutils docs)
+    # specutils FluxConservingResampler conserves the integral (Carnall 2017, arXiv:1705.05165, from memory; specutils docs)
     grid = np.linspace(5100, 6900, 900) * u.AA
     r = resample(spectrum_angstrom, grid)
     sub = spectrum_angstrom[5100 * u.AA : 6900 * u.AA]
