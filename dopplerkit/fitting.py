@@ -68,6 +68,10 @@ class KinematicFit:
         non-relativistic reading.
     notes : list of str
         What needs care: parameters at a bound, degeneracies, swapped jet labels.
+    data : dict
+        The data the fit used (redshifts, errors, epochs), for plots and checks.
+    posterior : dict or None
+        Filled by :meth:`sample`.
     """
 
     params: object
@@ -76,7 +80,6 @@ class KinematicFit:
     notes: list = field(default_factory=list)
     data: dict = field(default_factory=dict)
     _residual: object = None
-    _minimizer: object = None
     posterior: dict | None = None
 
     @property
@@ -237,9 +240,7 @@ def _near_c(params, notes):
 def _minimize(residual, params, **kw):
     import lmfit
 
-    mini = lmfit.Minimizer(residual, params, scale_covar=False, nan_policy="propagate", **kw)
-    res = mini.minimize(method="leastsq")
-    return mini, res
+    return lmfit.Minimizer(residual, params, scale_covar=False, nan_policy="propagate", **kw).minimize(method="leastsq")
 
 
 # ---------------------------------------------------------------------------
@@ -335,16 +336,14 @@ def _fit_one_pair(za, zr, ea, er, relativistic=True):
         m = _jet_pair_model(p["eta"].value, p["viewing_angle"].value, relativistic)
         return (np.array(m) - data) / err
 
-    mini, res = _minimize(residual, params)
+    res = _minimize(residual, params)
     notes = []
     _check_bounds(res.params, ["eta", "viewing_angle"], notes)
     if relativistic:
         _near_c(res.params, notes)
         if (1 + za) * (1 + zr) < 1:
             notes.append("the pair is unphysical for equal-speed opposite jets ((1+z_a)(1+z_r) < 1): the fit leaves a residual")
-    fit = KinematicFit(
-        res.params, res, "jet-pair" if relativistic else "jet-pair (Galilean)", notes, {"z": data, "z_err": err}, residual, mini
-    )
+    fit = KinematicFit(res.params, res, "jet-pair" if relativistic else "jet-pair (Galilean)", notes, {"z": data, "z_err": err}, residual)
     return fit
 
 
@@ -510,10 +509,10 @@ def fit_precessing_jet(
     for dt0 in np.linspace(0, s["period"], 4, endpoint=False):
         trial = params.copy()
         trial["t0"].set(value=float(s["t0"] + dt0 - (s["period"] if dt0 > s["period"] / 2 else 0)))
-        _, r = _minimize(residual, trial, max_nfev=200)
+        r = _minimize(residual, trial, max_nfev=200)
         if best is None or r.chisqr < best.chisqr:
             best = r
-    mini, res = _minimize(residual, best.params)
+    res = _minimize(residual, best.params)
     p = res.params
     v = p.valuesdict()
     m1, m2 = _precess_model(v, tt, relativistic)
@@ -532,9 +531,7 @@ def fit_precessing_jet(
     if relativistic:
         _near_c(p, notes)
     name = "precessing-jet" if relativistic else "precessing-jet (Galilean)"
-    return KinematicFit(
-        p, res, name, notes, {"t": tt, "z_1": z1, "z_2": z2, "z_err": e1, "z_2_err": e2, "swapped": swapped}, residual, mini
-    )
+    return KinematicFit(p, res, name, notes, {"t": tt, "z_1": z1, "z_2": z2, "z_err": e1, "z_2_err": e2, "swapped": swapped}, residual)
 
 
 # ---------------------------------------------------------------------------
@@ -662,12 +659,12 @@ def fit_constraints(
         trial = params.copy()
         trial["eta"].set(value=np.arctanh(b))
         trial["viewing_angle"].set(value=th)
-        mini, res = _minimize(residual, trial)
-        sols.append((res.chisqr, mini, res))
+        res = _minimize(residual, trial)
+        sols.append((res.chisqr, res))
     sols.sort(key=lambda s: s[0])
-    chi, mini, res = sols[0]
+    chi, res = sols[0]
     notes = []
-    for c2, _, r2 in sols[1:]:
+    for c2, r2 in sols[1:]:
         if abs(r2.params["viewing_angle"].value - res.params["viewing_angle"].value) > 5 and c2 - chi < 1.0:
             notes.append(
                 f"a second solution fits almost as well (delta chi-square {c2 - chi:.2f}): beta = {r2.params['beta'].value:.4f}, "
@@ -681,7 +678,7 @@ def fit_constraints(
         _near_c(res.params, notes)
     if res.ndata <= 1:
         notes.append("one measurement cannot fix two parameters: the result is one point of a degenerate curve (see redshift_locus)")
-    return KinematicFit(res.params, res, "constraints" if relativistic else "constraints (Galilean)", notes, {}, residual, mini)
+    return KinematicFit(res.params, res, "constraints" if relativistic else "constraints (Galilean)", notes, {}, residual)
 
 
 # ---------------------------------------------------------------------------

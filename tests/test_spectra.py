@@ -179,3 +179,12 @@ def test_arrays_broadcast_over_angles(spectrum_angstrom):
         a1, f1 = boost_arrays(x, f, "AA", "erg / (s cm2 Angstrom)", 0.4, t, beaming="blob")
         assert_allclose(ax[i], a1, rtol=1e-15)
         assert_allclose(fl[i], f1, rtol=1e-15)
+
+
+def test_with_medium_marks_a_copy(spectrum_angstrom):
+    from dopplerkit.spectra import spectral_medium, with_medium
+
+    air = with_medium(spectrum_angstrom, "air")
+    assert spectral_medium(air) == "air" and spectral_medium(spectrum_angstrom) == "vacuum"
+    with pytest.raises(ValueError, match="medium must be 'air' or 'vacuum'"):
+        with_medium(spectrum_angstrom, "water")
