@@ -668,6 +668,7 @@ class PrecessionExplorer:
             w.observe(lambda c, key=k: self._on_slider(key, c["new"]), "value")
         self.fit_button.on_click(self._on_fit)
         self._lim = None
+        self._moving = False
         self.blit = _Blitter(self.fig, [self.c1, self.c2, self.mean, self.r1, self.r2])
         self.widget = W.VBox(
             [W.HBox(list(self.sliders.values())[:3]), W.HBox([*list(self.sliders.values())[3:], self.fit_button]), self.message, self.image]
@@ -676,6 +677,8 @@ class PrecessionExplorer:
         self.update()
 
     def _on_slider(self, key, value):
+        if self._moving:  # the fit is moving the sliders: one redraw at the end, not five
+            return
         setattr(self.state, key, float(value))
         self.update()
 
@@ -702,10 +705,12 @@ class PrecessionExplorer:
         except Exception as exc:
             self.message.value = f"<span style='color:{PALETTE['receding']}'>fit failed: {exc}</span>"
             return None
-        for k, w in self.sliders.items():
-            w.unobserve_all("value")
-            w.value = getattr(self.state, k)
-            w.observe(lambda c, key=k: self._on_slider(key, c["new"]), "value")
+        self._moving = True
+        try:
+            for k, w in self.sliders.items():
+                w.value = getattr(self.state, k)
+        finally:
+            self._moving = False
         self.message.value = "<br>".join(
             [
                 f"beta {f.beta:.5f} &plusmn; {f.beta_err:.5f}; inclination {f.value('inclination'):.2f} &plusmn; {f.error('inclination'):.2f} deg; cone {f.value('cone_angle'):.2f} &plusmn; {f.error('cone_angle'):.2f} deg; period {f.value('period'):.3f} &plusmn; {f.error('period'):.3f} d",
