@@ -261,12 +261,11 @@ def _transform(spectrum, axis_factor, flux_factor, record, medium_method="Morton
     axis = spectrum.spectral_axis
     unit = axis.unit
     k = _axis_k(unit)
-    vals = np.asarray(axis.value)
     medium = spectral_medium(spectrum) if k == -1 else None
     if medium == "air":
         from .lines import air_to_vacuum, vacuum_to_air
 
-        vac = air_to_vacuum(vals * unit, method=medium_method)
+        vac = air_to_vacuum(np.asarray(axis.value) * unit, method=medium_method)
         new_axis = vacuum_to_air(vac / axis_factor, method=medium_method).to(unit)
     else:
         # arithmetic on the SpectralAxis itself: specutils then skips re-deriving the axis (~30 % faster)
