@@ -4,7 +4,7 @@ The kinematics core is imported eagerly (it needs only numpy and astropy.units);
 the other modules load on first use, so ``import dopplerkit`` stays cheap::
 
     import dopplerkit as dk
-    dk.doppler_factor(0.26, 79 * u.deg)
+    dk.doppler_factor(0.24, 57)          # bare numbers are degrees; 57 * u.deg is the same
     dk.spectra.boost_spectrum(...)      # loads specutils on first access
 """
 

@@ -38,6 +38,25 @@ class _UsageError(Exception):
     pass
 
 
+def _finite(text: str) -> float:
+    """argparse type: a finite number (NaN and inf are refused, not propagated)."""
+    try:
+        x = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if x != x or x in (float("inf"), float("-inf")):
+        raise argparse.ArgumentTypeError(f"must be a finite number, got {text!r}")
+    return x
+
+
+def _viewing_angle(text: str) -> float:
+    """argparse type: a viewing angle in degrees, 0 to 180."""
+    x = _finite(text)
+    if not 0.0 <= x <= 180.0:
+        raise argparse.ArgumentTypeError(f"must be a viewing angle in [0, 180] deg (0 = straight at us), got {text!r}")
+    return x
+
+
 def _build_parser() -> argparse.ArgumentParser:
     p = _Parser(
         prog="dopplerkit",
@@ -55,12 +74,14 @@ def _build_parser() -> argparse.ArgumentParser:
         "viewing angle; or solve a measured redshift pair (--pair) or a single redshift (--z).",
     )
     speed = c.add_mutually_exclusive_group()
-    speed.add_argument("--beta", type=float, help="speed v/c in [0, 1)")
-    speed.add_argument("--gamma", type=float, help="Lorentz factor (>= 1), exact for speeds very close to c")
-    c.add_argument("--angle", type=float, default=None, help="observer-frame viewing angle in degrees (0 = straight at us; default 90)")
-    c.add_argument("--alpha", type=float, default=0.7, help="spectral index, S_nu ~ nu**-alpha (default 0.7)")
-    c.add_argument("--pair", nargs=2, type=float, metavar=("Z_APPROACHING", "Z_RECEDING"), help="solve a jet/counter-jet redshift pair")
-    c.add_argument("--z", type=float, default=None, help="read a single redshift as velocities (linear vs relativistic)")
+    speed.add_argument("--beta", type=_finite, help="speed v/c in [0, 1)")
+    speed.add_argument("--gamma", type=_finite, help="Lorentz factor (>= 1), exact for speeds very close to c")
+    c.add_argument(
+        "--angle", type=_viewing_angle, default=None, help="observer-frame viewing angle in degrees (0 = straight at us; default 90)"
+    )
+    c.add_argument("--alpha", type=_finite, default=0.7, help="spectral index, S_nu ~ nu**-alpha (default 0.7)")
+    c.add_argument("--pair", nargs=2, type=_finite, metavar=("Z_APPROACHING", "Z_RECEDING"), help="solve a jet/counter-jet redshift pair")
+    c.add_argument("--z", type=_finite, default=None, help="read a single redshift as velocities (linear vs relativistic)")
 
     b = sub.add_parser(
         "batch",
@@ -158,7 +179,7 @@ def _calc(args, out) -> int:
             ("radio convention cz/(1+z) km/s", _fmt(t["v_radio"].value, ".8g")),
             ("relativistic radial speed km/s", _fmt(t["v_relativistic"].value, ".8g")),
             ("relativistic radial beta", _fmt(t["beta_radial"], ".8g")),
-            ("transverse-Doppler floor beta (theta = 90 deg)", _fmt(t["beta_transverse_floor"], ".8g")),
+            ("beta if the shift were all transverse Doppler (theta = 90 deg)", _fmt(t["beta_if_transverse"], ".8g")),
             ("cz off the relativistic reading by", f"{100 * float(t['cz_error']):+.3g} %"),
             ("radio reading off by", f"{100 * float(t['radio_error']):+.3g} %"),
         ]

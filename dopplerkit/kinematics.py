@@ -16,10 +16,12 @@ Conventions (used by every function here and in the rest of dopplerkit)
   ``delta = nu_obs/nu_emit = 1/(1 + z)``.
 * Radial velocities are positive when receding.
 * Spectral index ``alpha`` with ``S_nu`` proportional to ``nu**-alpha``.
-* Angles accept astropy Quantities in any angle unit; plain numbers are radians.
-  Returned angles are Quantities in degrees; speeds and redshifts are plain
-  floats or arrays.
-* NaN inputs propagate to NaN outputs without an error.
+* Angles accept astropy Quantities in any angle unit; a bare number means DEGREES
+  (as on the command line and in every output); radians only as ``u.rad``. Viewing
+  angles outside [0, 180] deg are refused. Returned angles are Quantities in degrees;
+  speeds and redshifts are plain floats or arrays.
+* NaN inputs propagate to NaN outputs without an error (so masked array elements
+  stay masked); every other invalid value raises.
 
 The product ``1 - beta cos theta`` is evaluated as
 ``(1 - beta) + 2 beta sin**2(theta/2)`` with ``1 - beta = 1/(Gamma**2 (1 + beta))``
@@ -111,14 +113,31 @@ def _to_float_array(value, name: str) -> np.ndarray:
     return arr
 
 
-def _angle(value, name: str = "theta") -> np.ndarray:
-    """Angle in radians as a float array. Quantities of any angle unit; plain numbers are radians."""
+def _angle(value, name: str = "theta", *, lo: float = 0.0, hi: float = 180.0) -> np.ndarray:
+    """Angle in radians as a float array, checked against [lo, hi] degrees.
+
+    Quantities of any angle unit are converted; a bare number (float, int, array) means
+    DEGREES, as on the command line and in every output. Radians only as ``u.rad``.
+    NaN passes through (documented per function); any other value outside [lo, hi] deg
+    raises ValueError naming the parameter.
+    """
     if isinstance(value, u.Quantity):
         try:
-            return np.asarray(value.to_value(u.rad), dtype=float)
+            deg = np.asarray(value.to_value(u.deg), dtype=float)
         except u.UnitConversionError as exc:
             raise u.UnitsError(f"{name} must be an angle (e.g. deg or rad), got unit {value.unit!r} ({_describe(value)})") from exc
-    return _to_float_array(value, name)
+    else:
+        deg = _to_float_array(value, name)
+    # a rounding hair outside the range (e.g. pi rad -> 180.00000000000003 deg) is clipped, not refused
+    tol = 1e-9
+    bad = (deg < lo - tol) | (deg > hi + tol) | np.isinf(deg)
+    if bad.any():
+        raise ValueError(
+            f"{name} must be an angle in [{lo:g}, {hi:g}] deg (bare numbers are degrees; radians as u.rad), got {_first_bad(deg, bad)} deg"
+        )
+    with np.errstate(invalid="ignore"):
+        deg = np.clip(deg, lo, hi)
+    return np.radians(deg)
 
 
 def _dimensionless(value, name: str) -> np.ndarray:
@@ -226,7 +245,7 @@ def doppler_factor(beta=None, theta=0.0, *, gamma=None):
     theta : float, array or Quantity
         Viewing angle in the observer frame between the velocity and the direction from
         the source to the observer; 0 = moving straight at us, 180 deg = straight away.
-        Plain numbers are radians.
+        Bare numbers are degrees.
     gamma : float or array, optional
         Lorentz factor instead of ``beta`` (exact for speeds extremely close to c).
 
@@ -261,7 +280,7 @@ def redshift(beta=None, theta=0.0, *, gamma=None):
         Speed v/c in [0, 1). Alternatively ``gamma=``.
     theta : float, array or Quantity
         Observer-frame viewing angle; 0 = straight at us (blueshift), 90 deg = transverse
-        (redshift Gamma - 1), 180 deg = straight away. Plain numbers are radians.
+        (redshift Gamma - 1), 180 deg = straight away. Bare numbers are degrees.
     gamma : float or array, optional
         Lorentz factor instead of ``beta``.
 
@@ -326,7 +345,7 @@ def aberrate(theta_source, beta=None, *, gamma=None) -> u.Quantity:
     ----------
     theta_source : float, array or Quantity
         Angle in the comoving frame between the velocity and the photon direction
-        towards the observer; 0 = forward. Plain numbers are radians.
+        towards the observer; 0 = forward. Bare numbers are degrees.
     beta : float, array or Quantity
         Speed v/c in [0, 1). Alternatively ``gamma=``.
 
@@ -350,7 +369,7 @@ def deaberrate(theta_observer, beta=None, *, gamma=None) -> u.Quantity:
     Parameters
     ----------
     theta_observer : float, array or Quantity
-        Observer-frame viewing angle (0 = straight at us). Plain numbers are radians.
+        Observer-frame viewing angle (0 = straight at us). Bare numbers are degrees.
     beta : float, array or Quantity
         Speed v/c in [0, 1). Alternatively ``gamma=``.
 
@@ -375,7 +394,7 @@ def apparent_speed(beta=None, theta=0.0, *, gamma=None):
     beta : float, array or Quantity
         Speed v/c in [0, 1). Alternatively ``gamma=``.
     theta : float, array or Quantity
-        Observer-frame viewing angle (0 = straight at us). Plain numbers are radians.
+        Observer-frame viewing angle (0 = straight at us). Bare numbers are degrees.
 
     Returns
     -------
@@ -440,7 +459,7 @@ def beaming_factor(beta=None, theta=0.0, alpha: ArrayLike = 0.0, geometry: Geome
     beta : float, array or Quantity
         Speed v/c in [0, 1). Alternatively ``gamma=``.
     theta : float, array or Quantity
-        Observer-frame viewing angle (0 = straight at us). Plain numbers are radians.
+        Observer-frame viewing angle (0 = straight at us). Bare numbers are degrees.
     alpha : float or array
         Spectral index, S_nu proportional to nu**-alpha.
     geometry : {"blob", "jet"}
@@ -698,8 +717,8 @@ def redshift_locus(z: ArrayLike, theta=None, *, num: int = 721):
     z : float or array
         Measured kinematic redshift (> -1).
     theta : Quantity or array, optional
-        Observer-frame viewing angles at which to evaluate (0 = straight at us; plain
-        numbers are radians). Default: ``num`` points from 0 to 180 deg.
+        Observer-frame viewing angles at which to evaluate (0 = straight at us; bare
+        numbers are degrees). Default: ``num`` points from 0 to 180 deg.
     num : int
         Number of grid points when ``theta`` is not given.
 
@@ -759,8 +778,11 @@ def velocity_readings(z: ArrayLike):
         ``v_radio`` (km/s, the radio convention v = c z/(1 + z));
         ``v_relativistic`` (km/s, radial speed from beta = ((1+z)^2-1)/((1+z)^2+1));
         ``beta_radial`` (relativistic radial v/c);
-        ``beta_transverse_floor`` (the smallest beta that gives z at theta = 90 deg,
-        sqrt(1 - 1/(1+z)^2); NaN for blueshifts, which a transverse motion cannot give);
+        ``beta_if_transverse`` (the speed that gives z by the transverse Doppler effect
+        alone, i.e. for motion at theta = 90 deg: Gamma = 1 + z, beta = sqrt(1 - 1/(1+z)^2);
+        NaN for blueshifts, which a transverse motion cannot give). It is NOT a lower limit:
+        the smallest speed that gives z is the radial one, ``beta_radial``; every angle
+        between 90 and 180 deg needs a speed between the two);
         ``cz_error`` and ``radio_error`` (fractional offsets of the linear readings from the
         relativistic one, (v - v_rel)/|v_rel|).
 
@@ -779,7 +801,7 @@ def velocity_readings(z: ArrayLike):
     br = np.atleast_1d(beta_from_redshift(zz))
     w = 1.0 + zz
     with np.errstate(invalid="ignore", divide="ignore"):
-        floor = np.where(zz >= 0, np.sqrt(zz * (2.0 + zz)) / w, np.nan)
+        b_transverse = np.where(zz >= 0, np.sqrt(zz * (2.0 + zz)) / w, np.nan)
         cz = c * zz
         vr = c * zz / w
         vrel = c * br
@@ -793,7 +815,7 @@ def velocity_readings(z: ArrayLike):
             "v_radio": vr * kms,
             "v_relativistic": vrel * kms,
             "beta_radial": br,
-            "beta_transverse_floor": floor,
+            "beta_if_transverse": b_transverse,
             "cz_error": err_cz,
             "radio_error": err_radio,
         }

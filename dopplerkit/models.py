@@ -1,7 +1,7 @@
 """Forward kinematic models: precessing jets, the line profile of a cone, synthetic spectra.
 
 Conventions of :mod:`dopplerkit.kinematics`: beta in [0, 1) (or ``gamma=``), angles in
-the observer frame, plain numbers are radians, z < 0 is a blueshift.
+the observer frame, bare numbers are degrees (radians only as u.rad), z < 0 is a blueshift.
 """
 
 from __future__ import annotations

@@ -302,7 +302,7 @@ def boost_spectrum(spectrum, beta=None, theta=0.0, *, gamma=None, beaming: Beami
         Speed v/c in [0, 1). Alternatively ``gamma=`` (exact near c).
     theta : float or Quantity
         Observer-frame viewing angle between the velocity and the direction to the observer;
-        0 = straight at us (blueshift), 180 deg = away. Plain numbers are radians.
+        0 = straight at us (blueshift), 180 deg = away. Bare numbers are degrees.
     beaming : {None, "blob", "jet"}
         None moves the axis only; "blob" (q = 3) and "jet" (q = 2) also transform the flux
         density exactly (see the module notes for the exponent per flux unit).

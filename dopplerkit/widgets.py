@@ -117,8 +117,8 @@ class ExplorerState:
     axis_unit: str = "Angstrom"
     flux_unit: str = "erg / (s cm2 Angstrom)"
     lines: dict = field(default_factory=dict)
-    beta: float = 0.26
-    angle_deg: float = 79.0
+    beta: float = 0.24  # the invented binary DKX-1 of data_demo/
+    angle_deg: float = 57.0
     beaming: str | None = None
     z_cosmo: float = 0.0
     opening_deg: float = 0.0
@@ -195,7 +195,9 @@ class ExplorerState:
         if self.opening_deg <= 0:
             return boost_arrays(self.axis, self.flux, self.axis_unit, self.flux_unit, self.beta, th * u.deg, **kw)
         cps, w = cone_directions(th * u.deg, self.opening_deg * u.deg, n_polar=6, n_azimuth=12)
-        axes, fluxes = boost_arrays(self.axis, self.flux, self.axis_unit, self.flux_unit, self.beta, np.arccos(np.clip(cps, -1, 1)), **kw)
+        axes, fluxes = boost_arrays(
+            self.axis, self.flux, self.axis_unit, self.flux_unit, self.beta, np.arccos(np.clip(cps, -1, 1)) * u.rad, **kw
+        )
         grid = boost_arrays(self.axis, None, self.axis_unit, None, self.beta, th * u.deg, z_cosmo=self.z_cosmo)[0]
         total = np.zeros_like(grid)
         for ax, f, wi in zip(axes, fluxes, w, strict=True):

@@ -56,7 +56,11 @@ def test_calc_pair_and_single_z(capsys):
         (["calc", "--beta", "1.5", "--angle", "10"], r"beta must satisfy 0 <= beta < 1, got 1.5"),
         (["calc", "--pair", "-0.5", "0.1"], r"unphysical jet pair"),
         (["calc"], r"give a speed"),
-        (["calc", "--beta", "x"], r"invalid float value"),
+        (["calc", "--beta", "x"], r"not a number: 'x'"),
+        (["calc", "--beta", "nan", "--angle", "10"], r"--beta: must be a finite number, got 'nan'"),
+        (["calc", "--z", "inf"], r"--z: must be a finite number"),
+        (["calc", "--beta", "0.3", "--angle", "400"], r"--angle: must be a viewing angle in \[0, 180\] deg"),
+        (["calc", "--beta", "0.3", "--angle", "-30"], r"--angle: must be a viewing angle in \[0, 180\] deg"),
     ],
 )
 def test_calc_errors(argv, match, capsys):

@@ -164,7 +164,7 @@ def test_relativistic_vs_galilean():
 
 def test_fit_at_bound_is_reported():
     # a head-on pair pushed slightly beyond what any angle allows puts theta at its bound 0
-    za, zr = dk.redshift(0.5, 0.0), dk.redshift(0.5, np.pi)
+    za, zr = dk.redshift(0.5, 0.0), dk.redshift(0.5, 180.0)
     with pytest.warns(FitAtBoundWarning, match="viewing_angle"):
         f = fit_jet_pair(za - 0.01, zr, 1e-3, 1e-3)
     assert any("bound" in n for n in f.notes)

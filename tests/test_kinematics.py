@@ -57,7 +57,7 @@ def test_longitudinal_doppler_handbook_value():
     # RL79 eq. 4.11 at theta = 0: delta = sqrt((1 + beta)/(1 - beta)); beta = 0.6 gives exactly 2.
     assert_allclose(dk.doppler_factor(0.6, 0.0), 2.0, rtol=1e-15)
     assert_allclose(dk.redshift(0.6, 0.0), -0.5, rtol=1e-15)
-    assert_allclose(dk.redshift(0.6, np.pi), 1.0, rtol=1e-15)
+    assert_allclose(dk.redshift(0.6, 180.0), 1.0, rtol=1e-15)
     assert_allclose(dk.lorentz_factor(0.6), 1.25, rtol=1e-15)
 
 
@@ -104,17 +104,17 @@ def test_redshift_is_inverse_doppler(beta, th):
 def test_apparent_speed_maximum():
     # Rees66; UP95 app. A: beta_app = beta sin theta/(1 - beta cos theta), maximal (= Gamma beta) at cos theta = beta.
     for beta in (0.5, 0.9, 0.99, 0.999):
-        th = np.arccos(beta)
+        th = np.arccos(beta) * u.rad
         g = dk.lorentz_factor(beta)
         assert_allclose(dk.apparent_speed(beta, th), g * beta, rtol=1e-12)
-        grid = np.linspace(0.001, np.pi - 0.001, 20001)
+        grid = np.linspace(0.001, np.pi - 0.001, 20001) * u.rad
         assert dk.apparent_speed(beta, grid).max() <= g * beta * (1 + 1e-12)
 
 
 def test_superluminal_handbook_value():
     # UP95 app. A / common textbook example: beta = 0.99 at theta = 8.1 deg (cos theta = beta) gives
     # beta_app = Gamma beta = 7.018 (Gamma = 7.089; from memory, checked by the formula above).
-    assert_allclose(dk.apparent_speed(0.99, np.arccos(0.99)), 0.99 / np.sqrt(1 - 0.99**2), rtol=1e-12)
+    assert_allclose(dk.apparent_speed(0.99, np.arccos(0.99) * u.rad), 0.99 / np.sqrt(1 - 0.99**2), rtol=1e-12)
     assert_allclose(dk.lorentz_factor(0.99), 7.0888120500833, rtol=1e-12)
 
 
@@ -167,10 +167,12 @@ def test_velocity_readings_against_astropy():
     assert_quantity_allclose(t["cz"], lam.to(u.km / u.s, equivalencies=u.doppler_optical(rest)), rtol=1e-12)
     assert_quantity_allclose(t["v_radio"], lam.to(u.km / u.s, equivalencies=u.doppler_radio(rest)), rtol=1e-10)
     assert_quantity_allclose(t["v_relativistic"], lam.to(u.km / u.s, equivalencies=u.doppler_relativistic(rest)), rtol=1e-10)
-    # the transverse floor is the beta whose Gamma - 1 is z (RL79 sec. 4.1)
+    # the transverse reading is the beta whose Gamma - 1 is z (RL79 sec. 4.1); it exceeds the radial speed,
+    # the smallest that gives z (a redshift seen at theta = 180 deg; same source)
     ok = z > 0
-    assert_allclose(dk.lorentz_factor(t["beta_transverse_floor"][ok]) - 1, z[ok], rtol=1e-10)
-    assert np.all(np.isnan(t["beta_transverse_floor"][~ok]))
+    assert_allclose(dk.lorentz_factor(t["beta_if_transverse"][ok]) - 1, z[ok], rtol=1e-10)
+    assert np.all(t["beta_if_transverse"][ok & (z > 0)] > t["beta_radial"][ok & (z > 0)])
+    assert np.all(np.isnan(t["beta_if_transverse"][~ok]))
     # the linear reading overestimates a large redshift's speed (common practice, no source)
     assert t["cz_error"][-1] > 1.0
 
@@ -183,9 +185,9 @@ def test_velocity_readings_against_astropy():
 def test_doppler_factor_high_precision_gamma(gamma, theta):
     # Exact to a few ulp for any speed given as gamma (textbook 1 - beta cos theta loses digits here).
     expected = float(mp_delta_from_gamma(gamma, theta))
-    assert_allclose(dk.doppler_factor(gamma=gamma, theta=theta), expected, rtol=4e-15)
+    assert_allclose(dk.doppler_factor(gamma=gamma, theta=theta * u.rad), expected, rtol=4e-15)
     z_expected = float(1 / mp_delta_from_gamma(gamma, theta) - 1)
-    assert_allclose(dk.redshift(gamma=gamma, theta=theta), z_expected, rtol=1e-14, atol=0)
+    assert_allclose(dk.redshift(gamma=gamma, theta=theta * u.rad), z_expected, rtol=1e-14, atol=0)
 
 
 @pytest.mark.parametrize("theta", [0.0, 1e-7, 1e-6, 1e-3])
@@ -193,7 +195,7 @@ def test_doppler_factor_high_precision_beta_near_one(theta):
     # beta = 1 - 1e-12 as a float: exact for that float's binary value; a warning says pass gamma=.
     beta = 1 - 1e-12
     with pytest.warns(NearLightSpeedWarning, match="gamma="):
-        got = dk.doppler_factor(beta, theta)
+        got = dk.doppler_factor(beta, theta * u.rad)
     assert_allclose(got, float(mp_delta_from_beta(beta, theta)), rtol=4e-15)
 
 
@@ -204,7 +206,7 @@ def test_textbook_form_loses_digits_where_we_do_not():
     textbook = 1 / (gamma * (1 - beta * np.cos(theta)))
     exact = float(mp_delta_from_gamma(gamma, theta))
     assert abs(textbook / exact - 1) > 1e-8
-    assert abs(dk.doppler_factor(gamma=gamma, theta=theta) / exact - 1) < 4e-15
+    assert abs(dk.doppler_factor(gamma=gamma, theta=theta * u.rad) / exact - 1) < 4e-15
 
 
 @pytest.mark.parametrize("beta", [1e-12, 1e-8, 1e-4, 0.01])
@@ -212,7 +214,7 @@ def test_small_redshift_keeps_relative_precision(beta):
     # z -> -beta cos theta + O(beta^2) as beta -> 0; compare with 50 digits (PHYSICS: z loses digits as beta -> 0).
     for theta in (0.0, 0.7, np.pi / 2, 2.5):
         exact = 1 / mp_delta_from_beta(beta, theta) - 1
-        assert_allclose(dk.redshift(beta, theta), float(exact), rtol=1e-13)
+        assert_allclose(dk.redshift(beta, theta * u.rad), float(exact), rtol=1e-13)
 
 
 def test_speed_as_velocity_quantity():
@@ -315,12 +317,13 @@ def test_broadcasting_and_types():
     theta = np.linspace(0, 180, 5) * u.deg
     d = dk.doppler_factor(beta, theta)
     assert d.shape == (3, 5) and isinstance(d, np.ndarray)
-    assert isinstance(dk.doppler_factor(0.5, 0.1), float)
+    assert isinstance(dk.doppler_factor(0.5, 10.0), float)
     a = dk.aberrate(theta, beta)
     assert a.unit == u.deg and a.shape == (3, 5)
-    assert isinstance(dk.aberrate(0.3, 0.2), u.Quantity) and dk.aberrate(0.3, 0.2).isscalar
-    # plain numbers are radians; any angle unit works
-    assert_allclose(dk.doppler_factor(0.5, np.pi / 3), dk.doppler_factor(0.5, 60 * u.deg))
+    assert isinstance(dk.aberrate(30.0, 0.2), u.Quantity) and dk.aberrate(30.0, 0.2).isscalar
+    # bare numbers are degrees (the one angle rule, as on the command line); any angle unit works
+    assert_allclose(dk.doppler_factor(0.5, 60), dk.doppler_factor(0.5, 60 * u.deg))
+    assert_allclose(dk.doppler_factor(0.5, np.pi / 3 * u.rad), dk.doppler_factor(0.5, 60 * u.deg))
     assert_allclose(dk.doppler_factor(0.5, 3600 * u.arcmin), dk.doppler_factor(0.5, 60 * u.deg))
 
 
@@ -376,3 +379,41 @@ def test_import_is_light():
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.strip()
     assert out == ""
+
+
+# ---------------------------------------------------------------------------
+# One angle rule for the whole public API: a bare number is degrees, radians only as u.rad,
+# viewing angles outside [0, 180] deg are refused (common practice of the project, no source).
+# ---------------------------------------------------------------------------
+def _angle_calls():
+    from dopplerkit.models import cone_directions, cone_line_profile, precessing_jet_redshifts
+    from dopplerkit.spectra import boost_arrays
+
+    x = np.linspace(5000.0, 8000.0, 50)
+    return {
+        "doppler_factor": lambda th: dk.doppler_factor(0.3, th),
+        "redshift": lambda th: dk.redshift(0.3, th),
+        "apparent_speed": lambda th: dk.apparent_speed(0.3, th),
+        "aberrate": lambda th: dk.aberrate(th, 0.3).to_value(u.deg),
+        "deaberrate": lambda th: dk.deaberrate(th, 0.3).to_value(u.deg),
+        "beaming_factor": lambda th: dk.beaming_factor(0.3, th, 0.7),
+        "jet_counterjet_ratio": lambda th: dk.jet_counterjet_ratio(0.3, th, 0.7),
+        "proper_motions": lambda th: dk.proper_motions(0.3, th, 5 * u.kpc)[0].value,
+        "redshift_locus": lambda th: dk.redshift_locus(0.05, th)[1],
+        "precessing_jet_redshifts": lambda th: precessing_jet_redshifts(3.0, 0.25, th, 20.0, 100.0, 0.0)[0],
+        "cone_directions": lambda th: cone_directions(th, 5.0)[0],
+        "cone_line_profile": lambda th: cone_line_profile(x * u.AA, 6564.61 * u.AA, 0.3, th, 5.0).value,
+        "boost_arrays": lambda th: boost_arrays(x, None, "Angstrom", None, 0.3, th)[0],
+    }
+
+
+@pytest.mark.parametrize("name", sorted(_angle_calls()))
+def test_bare_number_angles_are_degrees_everywhere(name):
+    call = _angle_calls()[name]
+    assert_allclose(call(37.0), call(37.0 * u.deg), rtol=1e-14)
+    assert_allclose(call(np.radians(37.0) * u.rad), call(37.0 * u.deg), rtol=1e-12)
+    for bad in (-30.0, 400.0, 200 * u.deg, -0.1 * u.rad):
+        with pytest.raises(ValueError, match=r"must be an angle in \[0, 180\] deg"):
+            call(bad)
+    with pytest.raises(u.UnitsError, match="must be an angle"):
+        call(3.0 * u.m)

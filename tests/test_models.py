@@ -64,14 +64,14 @@ def test_light_travel_time():
 def test_cone_quadrature_matches_monte_carlo():
     # Directions uniform over the cone's solid angle (common practice): cos(omega) uniform in [cos phi, 1].
     rng = np.random.default_rng(3)
-    theta, phi, beta = np.radians(30.0), np.radians(15.0), 0.4
+    theta, phi, beta = 30.0 * u.deg, 15.0 * u.deg, 0.4
     n = 400_000
-    mu = rng.uniform(np.cos(phi), 1.0, n)
+    mu = rng.uniform(np.cos(phi).value, 1.0, n)
     chi = rng.uniform(0, 2 * np.pi, n)
-    cos_psi = np.cos(theta) * mu + np.sin(theta) * np.sqrt(1 - mu**2) * np.cos(chi)
-    d_mc = dk.doppler_factor(beta, np.arccos(cos_psi))
+    cos_psi = np.cos(theta).value * mu + np.sin(theta).value * np.sqrt(1 - mu**2) * np.cos(chi)
+    d_mc = dk.doppler_factor(beta, np.arccos(cos_psi) * u.rad)
     cq, w = cone_directions(theta, phi)
-    d_q = dk.doppler_factor(beta, np.arccos(np.clip(cq, -1, 1)))
+    d_q = dk.doppler_factor(beta, np.arccos(np.clip(cq, -1, 1)) * u.rad)
     for power in (1, 3, 4):
         mc = np.mean(d_mc**power)
         err = np.std(d_mc**power) / np.sqrt(n)
@@ -87,8 +87,10 @@ def test_cone_quadrature_matches_monte_carlo():
 
 
 def test_cone_zero_opening_is_single_direction():
-    cq, w = cone_directions(0.3, 0.0)
-    assert_allclose(cq, [np.cos(0.3)]) and assert_allclose(w, [1.0])
+    # a cone of zero opening is its axis alone (common practice, no source)
+    cq, w = cone_directions(30.0, 0.0)  # bare numbers are degrees
+    assert_allclose(cq, [np.cos(np.radians(30.0))])
+    assert_allclose(w, [1.0])
 
 
 def test_synthesize_places_lines():
