@@ -2,8 +2,11 @@
 
 Formats (``FORMATS``), chosen once per directory and passed explicitly to the reader:
 
-``tabular-fits``  FITS binary table in HDU 1 (columns as below), read with specutils;
-``wcs1d-fits``    FITS image with a linear 1-D WCS, read with specutils;
+``tabular-fits``  FITS binary table in HDU 1 (columns as below); plain tables of scalar
+                  float/integer columns are read straight into numpy, anything with scaled
+                  (TSCALn/TZEROn, unsigned), null-flagged (TNULLn), array (TDIMn) or heap
+                  columns by astropy.io.fits, which applies those keywords;
+``wcs1d-fits``    FITS image with a linear 1-D WCS, read with astropy.io.fits;
 ``ecsv``          astropy ECSV table;
 ``ascii``         plain text or CSV with a header line.
 
@@ -12,6 +15,9 @@ Table columns are found by name, case-insensitively: the axis is ``wavelength``,
 the uncertainty is ``uncertainty`` or ``error``/``err``/``sigma`` (standard deviation),
 ``ivar`` (inverse variance) or ``variance``/``var``. Units come from the file (ECSV units,
 FITS TUNITn / BUNIT / CUNIT1); where the file has none they must be given.
+
+Null entries (TNULLn, BLANK, masked table cells) and NaN become masked pixels: NaN in the
+arrays, a ``mask`` on the Spectrum; they are never fitted.
 
 The wavelength medium comes from ``meta["medium"]``, a FITS keyword ``MEDIUM``
 ('air'/'vacuum') or a 1-D WCS CTYPE1 (``AWAV`` = air, ``WAVE`` = vacuum).
@@ -100,8 +106,15 @@ class SpectrumArrays:
         if self.medium is not None:
             meta["medium"] = self.medium
         unc = None if self.sigma is None else StdDevUncertainty(self.sigma)
+        bad = ~np.isfinite(self.flux)
+        if self.sigma is not None:
+            bad |= ~np.isfinite(self.sigma)
         return Spectrum(
-            flux=self.flux * u.Unit(self.flux_unit), spectral_axis=self.axis * u.Unit(self.axis_unit), uncertainty=unc, meta=meta
+            flux=self.flux * u.Unit(self.flux_unit),
+            spectral_axis=self.axis * u.Unit(self.axis_unit),
+            uncertainty=unc,
+            mask=bad if bad.any() else None,
+            meta=meta,
         )
 
 
@@ -151,6 +164,10 @@ def _unit(text, what, path, default):
 
 
 _TFORM = {"D": ">f8", "E": ">f4", "J": ">i4", "I": ">i2", "K": ">i8"}
+# Column keywords that change what the stored numbers mean (FITS Standard 4.0, sec. 7.3.2):
+# scaling (TSCAL/TZERO, also how unsigned integers are stored), null values (TNULL), array
+# shapes (TDIM). A table with any of them is read by astropy.io.fits, which applies them.
+_UNUSUAL_COLUMN_KEYS = ("TSCAL", "TZERO", "TNULL", "TDIM")
 
 
 def _card_value(text: str):
@@ -224,6 +241,8 @@ def _read_simple_bintable(path):
     if not all(isinstance(v, int) for v in (nrow, rowlen, nf)):
         return None
     names, formats, units = [], [], {}
+    if "THEAP" in ehdr or any(key.startswith(_UNUSUAL_COLUMN_KEYS) for key in ehdr):
+        return None  # scaled, null-flagged, multi-dimensional or heap columns: astropy.io.fits applies them
     for i in range(1, nf + 1):
         tform = str(ehdr.get(f"TFORM{i}", "")).strip()
         code = tform[1:] if tform[:1] == "1" else tform
@@ -240,6 +259,16 @@ def _read_simple_bintable(path):
         raise SpectrumReadError(f"{path}: truncated FITS file: {len(buf)} bytes, the headers announce {pos + nrow * rowlen}")
     data = np.frombuffer(buf, dtype=dtype, count=nrow, offset=pos)
     return {n: data[n].astype(float) for n in names}, units, ehdr, phdr
+
+
+def _masked_fits_column(hdu, c):
+    """One FITS table column with TSCAL/TZERO applied (by astropy) and TNULL entries masked."""
+    data = hdu.data[c.name]  # astropy applies TSCALn/TZEROn (and so unsigned integers)
+    if c.null is not None and np.asarray(data).dtype.kind in "iu":
+        raw = hdu.data.base[c.name] if hdu.data.base is not None else data
+        # TNULL refers to the stored (unscaled) integer (FITS Standard 4.0, sec. 7.3.2)
+        data = np.ma.masked_array(np.asarray(data), mask=np.asarray(raw) == c.null)
+    return data
 
 
 class _ArrayColumns:
@@ -260,6 +289,28 @@ class _ArrayColumns:
         return self._Col(self._columns[name], None if unit is None else _parse_unit(unit))
 
 
+def _float_column(data, path, name) -> np.ndarray:
+    """A column as a 1-D float array; masked (null) entries become NaN, i.e. masked pixels.
+
+    A spectrum stored as ONE row of array cells (fixed-length with TDIMn, or variable-length on
+    the heap) is unpacked to its 1-D arrays.
+    """
+    if np.ma.isMaskedArray(data):
+        arr = np.ma.filled(np.ma.asarray(data).astype(float), np.nan)
+    else:
+        arr = np.asarray(data)
+        if arr.dtype == object:  # variable-length arrays: one cell per row
+            if arr.size != 1:
+                raise SpectrumReadError(f"{path}: column {name!r} holds {arr.size} variable-length rows; one row per file is supported")
+            arr = np.asarray(arr.ravel()[0])
+        arr = arr.astype(float)
+    if arr.ndim > 1 and arr.shape[0] == 1:
+        arr = arr.reshape(arr.shape[1:])
+    if arr.ndim > 1 and arr.size == max(arr.shape):
+        arr = arr.ravel()
+    return arr
+
+
 def _from_table(t, path, spectral_unit, flux_unit):
     names = {c.lower(): c for c in t.colnames}
     axis_col = next((names[n] for n in AXIS_NAMES if n in names), None)
@@ -275,7 +326,7 @@ def _from_table(t, path, spectral_unit, flux_unit):
     def col(name):
         c = t[name]
         unit = getattr(c, "unit", None)
-        return np.asarray(getattr(c, "value", c), dtype=float), unit
+        return _float_column(getattr(c, "value", c) if not np.ma.isMaskedArray(c) else c, path, name), unit
 
     axis, au = col(axis_col)
     flux, fu = col(flux_col)
@@ -362,7 +413,7 @@ def read_arrays(
                     hdr = hdul[1].header
                     file_medium = hdr.get("MEDIUM") or hdul[0].header.get("MEDIUM")
                     hdu = hdul[1]
-                    cols = {c.name: np.asarray(hdu.data[c.name], dtype=float) for c in hdu.columns}
+                    cols = {c.name: _masked_fits_column(hdu, c) for c in hdu.columns}
                     units = {c.name: (c.unit or None) for c in hdu.columns}
                     axis, au, flux, fu, sigma = _from_table(_ArrayColumns(cols, units), path, spectral_unit, flux_unit)
                 else:
@@ -401,6 +452,10 @@ def _read_wcs1d(hdul, path, spectral_unit, flux_unit):
     if hdu is None or hdu.data is None:
         raise SpectrumReadError(f"{path}: no image data in HDU 0 or 1")
     data = np.asarray(hdu.data, dtype=float)
+    blank = hdu.header.get("BLANK")
+    if blank is not None and np.asarray(hdu.data).dtype.kind in "iu":
+        # an unscaled integer image keeps its BLANK pixels as numbers: mask them (FITS Standard 4.0, sec. 4.4.2.5)
+        data[np.asarray(hdu.data) == blank] = np.nan
     if data.ndim != 1:
         raise SpectrumReadError(f"{path}: 1-D WCS spectrum must have 1-D data, got shape {data.shape}")
     hdr = hdu.header
