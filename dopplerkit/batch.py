@@ -15,8 +15,26 @@
   with the same configuration.
 * One bad file never stops the batch: it gets a row with ``status = "error"`` and a message.
 
-Exit codes: 0 every spectrum fitted; 1 some failed (the table is still written);
-2 nothing could run (bad configuration, missing directory, no spectra).
+Safety of inputs and outputs:
+
+* The output is never an input: a path among the spectra, or one the next run's search would
+  take for a spectrum, is refused. An existing file that dopplerkit did not write (no
+  ``config_hash``/``dopplerkit_version`` columns) is refused unless ``--overwrite``.
+* A lock file beside the output (``.RESULTS.ecsv.lock``: pid, host, start time) refuses a
+  second run on the same output and names the first; a lock left by a dead process on this
+  host is taken over with a message.
+* ``--resume`` refits every input whose size or modification time changed since its row was
+  made, and refuses a different configuration (it says how to start afresh).
+* Local workers are capped at the cores available; a worker that dies (killed, out of memory)
+  has its chunk retried once in a fresh pool, then its files get error rows. SIGINT/SIGTERM
+  stop the workers and keep the journal (resume with ``--resume``).
+* On a Dask cluster tasks are retried once; a scheduler that cannot be reached, is lost, or
+  has no worker for ``cluster_timeout`` seconds ends the run with exit code 3, journal kept.
+
+Exit codes: 0 every spectrum fitted and ``ok``; 1 some spectra failed or are ``suspect`` (the
+table is still written); 2 nothing could run (bad configuration, missing directory, no spectra,
+an output that would destroy data, a locked output); 3 the Dask cluster was lost or had no
+worker (journal kept; resume with ``--resume``); 130 interrupted (journal kept).
 """
 
 from __future__ import annotations
@@ -37,6 +55,8 @@ import numpy as np
 from ._version import __version__
 
 __all__ = [
+    "EXIT_CLUSTER_LOST",
+    "EXIT_INTERRUPTED",
     "EXIT_NOTHING_RAN",
     "EXIT_OK",
     "EXIT_SOME_FAILED",
@@ -51,6 +71,8 @@ __all__ = [
 EXIT_OK = 0
 EXIT_SOME_FAILED = 1
 EXIT_NOTHING_RAN = 2
+EXIT_CLUSTER_LOST = 3
+EXIT_INTERRUPTED = 130
 
 SPECTRUM_EXTENSIONS = (".fits", ".fit", ".fts", ".fits.gz", ".ecsv", ".csv", ".txt", ".dat")
 
@@ -65,6 +87,10 @@ MODELS = {"jet-pair": "beta and viewing angle per spectrum from each two-compone
 
 class ConfigError(ValueError):
     """The batch configuration is invalid; the message names the key and the allowed values."""
+
+
+class ClusterError(RuntimeError):
+    """The Dask cluster could not be reached, was lost, or had no worker in time (exit code 3)."""
 
 
 @dataclass(frozen=True)
@@ -435,8 +461,20 @@ def _journal_path(output: Path) -> Path:
 
 
 def _read_previous(output: Path, config_hash: str) -> dict:
-    """Rows already done (same config), from the output table and the journal."""
+    """Rows already done, from the output table and the journal (journal rows are newer).
+
+    Raises ConfigError when they were made with another configuration.
+    """
     rows: dict = {}
+    others: set = set()
+
+    def take(d):
+        h = d.get("config_hash")
+        if h == config_hash:
+            rows[d["file"]] = d
+        elif h:
+            others.add(h)
+
     if output.exists():
         try:
             from astropy.table import Table
@@ -444,8 +482,7 @@ def _read_previous(output: Path, config_hash: str) -> dict:
             t = Table.read(output)
             for r in t:
                 d = {k: (r[k].item() if hasattr(r[k], "item") else r[k]) for k in t.colnames}
-                if d.get("config_hash") == config_hash:
-                    rows[d["file"]] = d
+                take({k: (v.decode("utf-8") if isinstance(v, bytes) else v) for k, v in d.items()})
         except Exception as exc:
             print(
                 f"dopplerkit batch: warning: cannot read the existing output {output} for --resume ({exc}); starting over", file=sys.stderr
@@ -458,9 +495,143 @@ def _read_previous(output: Path, config_hash: str) -> dict:
                     d = json.loads(line)
                 except json.JSONDecodeError:
                     continue  # a line torn by a crash
-                if d.get("config_hash") == config_hash:
-                    rows[d["file"]] = d
+                if isinstance(d, dict) and "file" in d:
+                    take(d)
+    if others:
+        raise ConfigError(
+            f"--resume: {output} (or its journal) was made with a different configuration (hash {', '.join(sorted(others))}; "
+            f"this configuration: {config_hash}); to start afresh run without --resume (the old results are replaced), "
+            "or write to another --output"
+        )
     return rows
+
+
+def _stamp(path: Path) -> tuple[int, int]:
+    """(size in bytes, modification time in ns) of an input file: what --resume compares."""
+    st = path.stat()
+    return int(st.st_size), int(st.st_mtime_ns)
+
+
+def _still_valid(row: dict, path: Path) -> bool:
+    """A previous row can be kept: it finished (not an error) and its input has not changed since."""
+    if row.get("status") not in ("ok", "suspect"):
+        return False
+    try:
+        size, mtime = _stamp(path)
+    except OSError:
+        return False
+    try:
+        return int(row.get("file_size", -1)) == size and int(row.get("file_mtime_ns", -1)) == mtime
+    except (TypeError, ValueError):
+        return False
+
+
+# ---------------------------------------------------------------------------
+# Output safety: never write over an input or a file dopplerkit did not write; one run per output
+# ---------------------------------------------------------------------------
+_OUR_COLUMNS = {"config_hash", "dopplerkit_version"}
+
+
+def _written_by_us(path: Path) -> bool:
+    try:
+        from astropy.table import Table
+
+        return _OUR_COLUMNS <= set(Table.read(path).colnames)
+    except Exception:
+        return False
+
+
+def _check_output(output: Path, spectra_dir: Path, paths: list[Path], pattern: str | None, overwrite: bool) -> None:
+    """Refuse an output that would destroy data (ConfigError, exit code 2)."""
+    target = output.resolve()
+    inputs = {p.resolve() for p in paths}
+    for extra in (_journal_path(output).resolve(), _lock_path(output).resolve()):
+        if extra in inputs:
+            raise ConfigError(f"--output {str(output)!r}: its journal or lock file {str(extra)!r} is one of the input spectra")
+    if target in inputs:
+        raise ConfigError(f"--output {str(output)!r} is one of the input spectra; it would be replaced by the results table")
+    root = spectra_dir.resolve()
+    if target.is_relative_to(root):
+        rel = target.relative_to(root).as_posix()
+        picked = (
+            (fnmatch.fnmatch(rel, pattern) or fnmatch.fnmatch(target.name, pattern))
+            if pattern is not None
+            else target.name.lower().endswith(SPECTRUM_EXTENSIONS)
+        )
+        if picked:
+            raise ConfigError(
+                f"--output {str(output)!r} lies inside SPECTRA_DIR and matches the spectra "
+                f"({'--pattern ' + repr(pattern) if pattern else 'by its extension'}): the next run would read the results as a spectrum; "
+                "write it elsewhere"
+            )
+    if output.exists() and not overwrite:
+        if output.is_dir():
+            raise ConfigError(f"--output {str(output)!r} is a directory; give a file name such as results.ecsv")
+        if not _written_by_us(output):
+            raise ConfigError(
+                f"--output {str(output)!r} exists and is not a dopplerkit results table; refusing to replace it "
+                "(pass --overwrite to replace it anyway)"
+            )
+
+
+def _lock_path(output: Path) -> Path:
+    return output.with_name(f".{output.name}.lock")
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+class _OutputLock:
+    """An exclusive lock file beside the output: pid, host and start time of the run holding it."""
+
+    def __init__(self, output: Path, out):
+        self.path = _lock_path(output)
+        self.output = output
+        self.out = out
+        self.held = False
+
+    def __enter__(self):
+        import socket
+
+        me = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        for _ in range(2):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                try:
+                    other = json.loads(self.path.read_text() or "{}")
+                except (OSError, json.JSONDecodeError):
+                    other = {}
+                pid, host = other.get("pid"), other.get("host")
+                if host == me["host"] and isinstance(pid, int) and not _pid_alive(pid):
+                    print(
+                        f"dopplerkit batch: note: taking over the lock of a run that died (pid {pid}, started {other.get('started')})",
+                        file=self.out,
+                    )
+                    self.path.unlink(missing_ok=True)
+                    continue
+                raise ConfigError(
+                    f"another dopplerkit batch run (pid {pid}, host {host}, started {other.get('started')}) is writing {str(self.output)!r}; "
+                    f"wait for it or choose another --output (if no such run exists, delete {str(self.path)!r})"
+                ) from None
+            with os.fdopen(fd, "w") as fh:
+                json.dump(me, fh)
+            self.held = True
+            return self
+        raise ConfigError(f"cannot take the lock {str(self.path)!r}")  # pragma: no cover
+
+    def __exit__(self, *exc):
+        if self.held:
+            self.path.unlink(missing_ok=True)
+        return False
 
 
 def _to_table(rows: list[dict]):
@@ -476,6 +647,8 @@ def _to_table(rows: list[dict]):
         "flags",
         "axis_unit",
         "seconds",
+        "file_size",
+        "file_mtime_ns",
         "config_hash",
         "dopplerkit_version",
     ]
@@ -490,6 +663,8 @@ def _to_table(rows: list[dict]):
         vals = [r.get(k) for r in rows]
         if k in ("file", "status", "message", "flags", "axis_unit", "config_hash", "dopplerkit_version"):
             data[k] = [("" if v is None else str(v)) for v in vals]
+        elif k in ("file_size", "file_mtime_ns"):
+            data[k] = np.array([-1 if v is None else int(v) for v in vals], dtype=np.int64)
         else:
             data[k] = np.array([np.nan if v is None else float(v) for v in vals])
     t = Table(data)
@@ -508,13 +683,58 @@ def run_batch(
     workers: int | None = None,
     scheduler: str | None = None,
     resume: bool = False,
+    overwrite: bool = False,
     pattern: str | None = None,
     chunk_size: int = 100,
     quiet: bool = False,
     plot: str | None = None,
+    cluster_timeout: float = 60.0,
     out=None,
 ) -> tuple[int, object]:
-    """Fit every spectrum under ``spectra_dir``; return (exit code, result Table)."""
+    """Fit every spectrum under ``spectra_dir``; return (exit code, result Table).
+
+    Parameters
+    ----------
+    spectra_dir : str or Path
+        Directory searched recursively for spectra.
+    config : str, Path or BatchConfig
+        The TOML configuration (see :func:`load_config`).
+    output : str or Path
+        Result table; format from the extension (.ecsv, .csv, .fits, .parquet). Never an input
+        file; an existing file dopplerkit did not write is replaced only with ``overwrite``.
+    workers : int, optional
+        Local worker processes (default and maximum: the cores available to this process).
+    scheduler : str, optional
+        Address of a running Dask scheduler; the work goes there instead.
+    resume : bool
+        Keep rows of a previous run with the same configuration whose input is unchanged.
+    overwrite : bool
+        Replace an existing output file that dopplerkit did not write.
+    pattern : str, optional
+        Glob on the relative path or file name (default: every known spectrum extension).
+    chunk_size : int
+        Spectra per task.
+    quiet : bool
+        No progress bar or summary line.
+    plot : str, optional
+        Also write the population figure to this path.
+    cluster_timeout : float
+        Seconds to wait for a Dask scheduler and for at least one worker (exit code 3 after).
+    out : file, optional
+        Where progress and messages go (default stderr).
+
+    Returns
+    -------
+    code : int
+        0 all ``ok``; 1 some ``error`` or ``suspect`` (table written); 3 cluster lost; 130 interrupted.
+    table : astropy.table.Table or None
+        The results, in input order (None when the run did not finish).
+
+    Raises
+    ------
+    ConfigError
+        Nothing could run: bad configuration or arguments, no spectra, an unsafe output, a locked output.
+    """
     out = out or sys.stderr
     d = Path(spectra_dir)
     if not d.is_dir():
@@ -534,58 +754,90 @@ def run_batch(
         raise ConfigError(f"--chunk-size must be >= 1, got {chunk_size}")
     if workers is not None and workers < 1:
         raise ConfigError(f"--workers must be >= 1, got {workers}")
+    if not cluster_timeout > 0:
+        raise ConfigError(f"--cluster-timeout must be > 0 seconds, got {cluster_timeout}")
     paths = find_spectra(d, pattern)
     if not paths:
         raise ConfigError(
             f"no spectra found under {str(d)!r}"
             + (f" matching {pattern!r}" if pattern else f" (extensions {', '.join(SPECTRUM_EXTENSIONS)})")
         )
+    _check_output(output, d, paths, pattern, overwrite)
+    if not output.parent.exists():
+        output.parent.mkdir(parents=True)
+        if not quiet:
+            print(f"dopplerkit batch: created the output directory {output.parent}", file=out)
+    with _OutputLock(output, out):
+        return _run_locked(d, cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out, write_table)
+
+
+def _run_locked(d, cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out, write_table):
     h = cfg.hash
     previous = _read_previous(output, h) if resume else {}
     journal = _journal_path(output)
     if not resume and journal.exists():
-        journal.unlink()
-    todo = [p for p in paths if str(p) not in previous or previous[str(p)].get("status") != "ok"]
+        journal.unlink()  # ours (the lock is held): a fresh run starts a fresh journal
+    keep = {str(p): previous[str(p)] for p in paths if str(p) in previous and _still_valid(previous[str(p)], p)}
+    todo = [p for p in paths if str(p) not in keep]
     fmts = _formats(todo)
     cfgd = cfg.as_dict()
     chunks = [(list(map(str, todo[i : i + chunk_size])), fmts[i : i + chunk_size]) for i in range(0, len(todo), chunk_size)]
-    rows = dict(previous)
+    stamps = {}
+    for p in todo:
+        try:
+            stamps[str(p)] = _stamp(p)
+        except OSError:
+            stamps[str(p)] = (-1, -1)
+    rows = dict(keep)
     t_start = time.perf_counter()
     n_new = 0
-    output.parent.mkdir(parents=True, exist_ok=True)
     bar = None
     if not quiet:
         from tqdm.auto import tqdm
 
-        bar = tqdm(total=len(paths), initial=len(paths) - len(todo), unit="spectrum", desc="fitting", file=out, dynamic_ncols=True)
-    with journal.open("a") as jf:
+        bar = tqdm(total=len(paths), initial=len(keep), unit="spectrum", desc="fitting", file=out, dynamic_ncols=True)
+    code = None
+    try:
+        with journal.open("a") as jf:
 
-        def record(chunk_rows):
-            nonlocal n_new
-            for r in chunk_rows:
-                r["config_hash"] = h
-                r["dopplerkit_version"] = __version__
-                rows[r["file"]] = r
-                jf.write(json.dumps(r, default=float, allow_nan=True) + "\n")
-            jf.flush()
-            os.fsync(jf.fileno())
-            n_new += len(chunk_rows)
-            if bar is not None:
-                bar.update(len(chunk_rows))
+            def record(chunk_rows):
+                nonlocal n_new
+                for r in chunk_rows:
+                    r["file_size"], r["file_mtime_ns"] = stamps.get(r["file"], (-1, -1))
+                    r["config_hash"] = h
+                    r["dopplerkit_version"] = __version__
+                    rows[r["file"]] = r
+                    jf.write(json.dumps(r, default=float, allow_nan=True) + "\n")
+                jf.flush()
+                os.fsync(jf.fileno())
+                n_new += len(chunk_rows)
+                if bar is not None:
+                    bar.update(len(chunk_rows))
 
-        if chunks:
-            if scheduler:
-                _run_dask(scheduler, chunks, cfgd, record)
-            else:
-                _run_local(workers, chunks, cfgd, record)
-    if bar is not None:
-        bar.close()
+            if chunks:
+                with _stop_on_sigterm():
+                    if scheduler:
+                        _run_dask(scheduler, chunks, cfgd, record, cluster_timeout)
+                    else:
+                        _run_local(workers, chunks, cfgd, record, out, quiet)
+    except ClusterError as exc:
+        code = EXIT_CLUSTER_LOST
+        print(f"dopplerkit batch: error: {exc}; {n_new} new results kept in {journal}; run again with --resume", file=out)
+    except KeyboardInterrupt:
+        code = EXIT_INTERRUPTED
+        print(f"dopplerkit batch: interrupted; {n_new} new results kept in {journal}; run again with --resume", file=out)
+    finally:
+        if bar is not None:
+            bar.close()
+    if code is not None:
+        return code, None
     ordered = [rows[str(p)] for p in paths if str(p) in rows]
     table = _to_table(ordered)
     write_table(table, output)
     journal.unlink(missing_ok=True)
     n_ok = int(np.sum(table["status"] == "ok"))
-    n_err = len(table) - n_ok
+    n_err = int(np.sum(table["status"] == "error"))
+    n_sus = len(table) - n_ok - n_err
     elapsed = time.perf_counter() - t_start
     if plot:
         from .plotting import plot_population
@@ -594,37 +846,142 @@ def run_batch(
     if not quiet:
         rate = n_new / elapsed if elapsed > 0 else float("nan")
         print(
-            f"fitted {n_ok}, failed {n_err}, of {len(paths)} spectra ({len(paths) - len(todo)} resumed); elapsed {elapsed:.1f} s, {rate:.1f} spectra/s; results in {output}",
+            f"ok {n_ok}, suspect {n_sus}, failed {n_err}, of {len(paths)} spectra ({len(keep)} kept from before); "
+            f"elapsed {elapsed:.1f} s, {rate:.1f} spectra/s; results in {output}",
             file=out,
         )
-    return (EXIT_OK if n_err == 0 else EXIT_SOME_FAILED), table
+    return (EXIT_OK if n_ok == len(table) else EXIT_SOME_FAILED), table
 
 
-def _run_local(workers, chunks, cfgd, record):
-    n = workers or os.cpu_count() or 1
-    if n == 1 or len(chunks) == 1:
+class _stop_on_sigterm:
+    """Within the block, SIGTERM behaves like Ctrl-C (KeyboardInterrupt), so workers are stopped and the journal kept."""
+
+    def __enter__(self):
+        import signal
+        import threading
+
+        self.old = None
+        if threading.current_thread() is threading.main_thread():
+            self.old = signal.signal(signal.SIGTERM, self._raise)
+        return self
+
+    @staticmethod
+    def _raise(signum, frame):
+        raise KeyboardInterrupt
+
+    def __exit__(self, *exc):
+        import signal
+
+        if self.old is not None:
+            signal.signal(signal.SIGTERM, self.old)
+        return False
+
+
+def _available_cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not on Linux
+        return os.cpu_count() or 1
+
+
+def _dead_worker_rows(paths, reason):
+    return [{"file": p, "status": "error", "message": reason, "seconds": math.nan} for p in paths]
+
+
+def _run_local(workers, chunks, cfgd, record, out=sys.stderr, quiet=False):
+    cores = _available_cores()
+    n = workers or cores
+    if n > cores:
+        if not quiet:
+            print(f"dopplerkit batch: note: --workers {n} capped at the {cores} cores available", file=out)
+        n = cores
+    n = min(n, len(chunks))
+    if n == 1:
         for paths, fmts in chunks:
             record(process_chunk(paths, fmts, cfgd))
         return
+    pending = list(chunks)
+    for attempt in (1, 2):
+        pending = _pool_pass(n, pending, cfgd, record)
+        if not pending:
+            return
+        if attempt == 1 and not quiet:
+            print(f"dopplerkit batch: note: a worker process died; retrying {len(pending)} chunk(s) once in a fresh pool", file=out)
+    for paths, _fmts in pending:
+        record(_dead_worker_rows(paths, "WorkerDied: the worker process fitting this file died twice (killed, or out of memory)"))
+
+
+def _pool_pass(n, chunks, cfgd, record):
+    """Run chunks in a process pool; return the chunks whose worker died (BrokenProcessPool)."""
     import multiprocessing as mp
     from concurrent.futures import ProcessPoolExecutor, as_completed
+    from concurrent.futures.process import BrokenProcessPool
 
-    ctx = mp.get_context("fork" if sys.platform.startswith("linux") else "spawn")
-    with ProcessPoolExecutor(max_workers=n, mp_context=ctx) as ex:
-        futs = [ex.submit(process_chunk, p, f, cfgd) for p, f in chunks]
+    # forkserver: safe when the parent already runs threads (the progress bar), unlike fork
+    method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
+    ctx = mp.get_context(method)
+    if method == "forkserver":
+        ctx.set_forkserver_preload(["dopplerkit.batch", "dopplerkit.measure", "dopplerkit.io"])
+    ex = ProcessPoolExecutor(max_workers=n, mp_context=ctx)
+    failed = []
+    try:
+        futs = {ex.submit(process_chunk, p, f, cfgd): (p, f) for p, f in chunks}
         for fut in as_completed(futs):
-            record(fut.result())
+            try:
+                res = fut.result()
+            except BrokenProcessPool:
+                failed.append(futs[fut])
+                continue
+            record(res)
+    except BaseException:
+        _kill_pool(ex)
+        raise
+    ex.shutdown(wait=True, cancel_futures=True)
+    return failed
 
 
-def _run_dask(address, chunks, cfgd, record):
+def _kill_pool(ex):
+    """Stop a process pool at once (Ctrl-C, SIGTERM): no worker outlives the command."""
+    procs = list(getattr(ex, "_processes", {}).values())
+    ex.shutdown(wait=False, cancel_futures=True)
+    for p in procs:
+        try:
+            p.terminate()
+        except Exception:  # pragma: no cover
+            pass
+    for p in procs:
+        p.join(timeout=5)
+
+
+def _run_dask(address, chunks, cfgd, record, timeout=60.0):
     try:
         from dask.distributed import Client, as_completed
     except ImportError as exc:  # pragma: no cover
         raise ConfigError("--scheduler needs dask[distributed]: pip install 'dopplerkit[cluster]'") from exc
-    with Client(address, timeout="20s") as client:
-        futs = [client.submit(process_chunk, p, f, cfgd, pure=False) for p, f in chunks]
-        for fut in as_completed(futs):
-            record(fut.result())
+    try:
+        client = Client(address, timeout=f"{timeout}s")
+    except (OSError, TimeoutError) as exc:
+        raise ClusterError(f"cannot reach the Dask scheduler at {address} within {timeout:g} s ({type(exc).__name__})") from None
+    try:
+        try:
+            client.wait_for_workers(1, timeout=timeout)
+        except (TimeoutError, OSError) as exc:
+            raise ClusterError(f"the Dask scheduler at {address} had no worker for {timeout:g} s ({type(exc).__name__})") from None
+        futs = [client.submit(process_chunk, p, f, cfgd, pure=False, retries=1) for p, f in chunks]
+        try:
+            for fut in as_completed(futs):
+                record(fut.result())
+        except (OSError, TimeoutError) as exc:
+            raise ClusterError(f"lost the Dask scheduler at {address} ({type(exc).__name__}: {exc})") from None
+        except Exception as exc:
+            if type(exc).__name__ in ("CommClosedError", "CancelledError", "FutureCancelledError"):
+                raise ClusterError(f"lost the Dask scheduler at {address} ({type(exc).__name__})") from None
+            raise
+    finally:
+        try:
+            client.close(timeout=5)
+        except Exception:  # pragma: no cover
+            pass
 
 
 def run_batch_cli(args) -> int:
@@ -637,7 +994,9 @@ def run_batch_cli(args) -> int:
             workers=args.workers,
             scheduler=args.scheduler,
             resume=args.resume,
+            overwrite=args.overwrite,
             pattern=args.pattern,
+            cluster_timeout=args.cluster_timeout,
             chunk_size=args.chunk_size,
             quiet=args.quiet,
             plot=args.plot,
@@ -645,4 +1004,7 @@ def run_batch_cli(args) -> int:
     except ConfigError as exc:
         print(f"dopplerkit batch: error: {exc}", file=sys.stderr)
         return EXIT_NOTHING_RAN
+    except KeyboardInterrupt:
+        print("dopplerkit batch: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
     return code

@@ -8,8 +8,10 @@ directly. Subcommands:
 ``batch``  fit a directory of spectra (see :mod:`dopplerkit.batch`);
 ``demo``   run the main job on the bundled demo data.
 
-Exit codes: 0 success; 1 some spectra failed in a batch (results still written);
-2 nothing could run (bad arguments, bad configuration, missing directory).
+Exit codes: 0 success (in a batch: every spectrum ``ok``); 1 some spectra failed or are
+``suspect`` (results still written); 2 nothing could run (bad arguments, bad configuration,
+missing directory, an output that would destroy data, a locked output); 3 the Dask cluster
+was lost or had no worker (journal kept); 130 interrupted (journal kept).
 """
 
 from __future__ import annotations
@@ -87,7 +89,8 @@ def _build_parser() -> argparse.ArgumentParser:
         "batch",
         help="fit every spectrum in a directory",
         description="Fit line centres (and, if asked, speed and viewing angle) in every spectrum of a directory. "
-        "Exit code 0: all fitted; 1: some failed (results written); 2: nothing could run.",
+        "Exit code 0: all ok; 1: some failed or suspect (results written); 2: nothing could run (nothing written); "
+        "3: Dask cluster lost or without workers (journal kept, use --resume); 130: interrupted (journal kept).",
     )
     b.add_argument("spectra_dir", metavar="SPECTRA_DIR", help="directory of spectra (searched recursively)")
     b.add_argument("--config", required=True, metavar="CONFIG.toml", help="fit configuration (TOML)")
@@ -96,7 +99,17 @@ def _build_parser() -> argparse.ArgumentParser:
     )
     b.add_argument("--workers", type=int, default=None, metavar="N", help="local worker processes (default: all cores)")
     b.add_argument("--scheduler", default=None, metavar="ADDRESS", help="address of a running Dask scheduler, e.g. tcp://127.0.0.1:8786")
-    b.add_argument("--resume", action="store_true", help="skip spectra already in the output")
+    b.add_argument(
+        "--resume", action="store_true", help="keep results of an earlier run on the same output (same configuration, unchanged inputs)"
+    )
+    b.add_argument("--overwrite", action="store_true", help="replace an existing output file that dopplerkit did not write")
+    b.add_argument(
+        "--cluster-timeout",
+        type=_finite,
+        default=60.0,
+        metavar="SECONDS",
+        help="wait this long for the Dask scheduler and a worker (default 60; exit code 3 after)",
+    )
     b.add_argument("--pattern", default=None, metavar="GLOB", help="only files matching this glob (default: every readable spectrum)")
     b.add_argument("--chunk-size", type=int, default=100, metavar="K", help="spectra per task (default 100)")
     b.add_argument("--plot", default=None, metavar="SUMMARY.png", help="also write a summary figure")

@@ -607,11 +607,43 @@ TABLE_FORMATS = {".ecsv": "ascii.ecsv", ".csv": "ascii.csv", ".fits": "fits", ".
 
 
 def write_table(table, path: str | Path) -> Path:
-    """Write an astropy Table atomically; format from the extension (.ecsv, .csv, .fits, .parquet)."""
+    """Write an astropy Table atomically; format from the extension (.ecsv, .csv, .fits, .parquet).
+
+    Parameters
+    ----------
+    table : astropy.table.Table
+        The table (units and meta are kept where the format can hold them).
+    path : str or Path
+        Target file; written to a temporary file beside it, then renamed into place. Text of any
+        script is kept: in FITS, non-ASCII text columns are stored as UTF-8 bytes.
+
+    Returns
+    -------
+    Path
+        ``path``.
+    """
     path = Path(path)
     fmt = TABLE_FORMATS.get(path.suffix.lower())
     if fmt is None:
         raise ValueError(f"result table extension must be one of {sorted(TABLE_FORMATS)}, got {path.suffix!r}")
+    if fmt == "fits":
+        table = _utf8_text_columns(table)
     with atomic_path(path) as tmp:
         table.write(tmp, format=fmt)
     return path
+
+
+def _utf8_text_columns(table):
+    """FITS text columns are ASCII: non-ASCII text (file names in any script) is stored as UTF-8 bytes.
+
+    astropy reads such a column back as bytes that decode with UTF-8 (``.decode("utf-8")``).
+    """
+    out = None
+    for name in table.colnames:
+        col = table[name]
+        if col.dtype.kind == "U" and any(not str(v).isascii() for v in col):
+            if out is None:
+                out = table.copy(copy_data=False)
+            out[name] = np.char.encode(np.asarray(col, dtype=str), "utf-8")
+            out[name].unit = col.unit
+    return table if out is None else out
