@@ -78,10 +78,12 @@ SPECTRUM_EXTENSIONS = (".fits", ".fit", ".fts", ".fits.gz", ".ecsv", ".csv", ".t
 
 _ALLOWED = {
     "line": {"name", "rest", "medium", "components", "label"},
-    "kinematics": {"model"},
+    "kinematics": {"model", "beta_max"},
     "spectra": {"medium", "spectral_unit", "flux_unit"},
-    "fit": {"tie", "kind", "continuum_degree", "window", "window_kms", "z_min", "z_max"},
+    "fit": {"tie", "kind", "continuum", "continuum_degree", "window", "window_kms", "z_min", "z_max"},
 }
+#: Default largest speed: the line search covers the redshifts it allows (override with beta_max or z_min/z_max).
+BETA_MAX_DEFAULT = 0.5
 MODELS = {"jet-pair": "beta and viewing angle per spectrum from each two-component line", "none": "line shifts only"}
 
 
@@ -104,7 +106,8 @@ class BatchConfig:
     flux_unit: str | None = None
     tie: bool = False
     kind: str = "emission"
-    continuum_degree: int = 1
+    continuum: str = "auto"
+    continuum_degree: int | None = None
     window: float = 6.0
     window_kms: float = 3000.0
     z_min: float = -0.9
@@ -121,6 +124,31 @@ class BatchConfig:
 
 def _err(msg):
     raise ConfigError(msg)
+
+
+def _unknown(where, section, keys, allowed):
+    """ConfigError for unknown keys, with the nearest allowed key suggested."""
+    import difflib
+
+    hints = []
+    for k in sorted(keys):
+        near = difflib.get_close_matches(str(k), sorted(allowed), n=1)
+        hints.append(f"{k!r}" + (f" (did you mean {near[0]!r}?)" if near else ""))
+    _err(f"{where}: {section}: unknown key(s) {', '.join(hints)}; allowed: {sorted(allowed)}")
+
+
+def _number(where, section, key, value, *, lo=None, hi=None, lo_open=False, integer=False):
+    """A finite number (never a boolean) from the config, within [lo, hi]; ConfigError naming the key otherwise."""
+    kind = "an integer" if integer else "a number"
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or (integer and not isinstance(value, int)):
+        _err(f"{where}: {section} {key} must be {kind}, got {value!r} ({type(value).__name__})")
+    if not math.isfinite(value):
+        _err(f"{where}: {section} {key} must be finite, got {value!r}")
+    if lo is not None and (value <= lo if lo_open else value < lo):
+        _err(f"{where}: {section} {key} must be {'>' if lo_open else '>='} {lo}, got {value!r}")
+    if hi is not None and value > hi:
+        _err(f"{where}: {section} {key} must be <= {hi}, got {value!r}")
+    return value
 
 
 def load_config(path: str | Path) -> BatchConfig:
@@ -140,7 +168,7 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
     """Validate a configuration given as a dict (the parsed TOML)."""
     unknown = set(data) - set(_ALLOWED)
     if unknown:
-        _err(f"{where}: unknown section(s) {sorted(unknown)}; allowed: {sorted(_ALLOWED)}")
+        _unknown(where, "sections", unknown, _ALLOWED)
     raw_lines = data.get("line")
     if not raw_lines or not isinstance(raw_lines, list):
         _err(f'{where}: at least one [[line]] table is required, e.g. [[line]] name = "H-alpha" components = 2')
@@ -148,9 +176,11 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
     from .lines import get_line
 
     for i, ln in enumerate(raw_lines):
+        if not isinstance(ln, dict):
+            _err(f"{where}: [[line]] {i} must be a table of keys, got {ln!r}")
         bad = set(ln) - _ALLOWED["line"]
         if bad:
-            _err(f"{where}: [[line]] {i}: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['line'])}")
+            _unknown(where, f"[[line]] {i}", bad, _ALLOWED["line"])
         comps = ln.get("components", 1)
         if not isinstance(comps, int) or isinstance(comps, bool) or not 1 <= comps <= 6:
             _err(f"{where}: [[line]] {i}: components must be an integer 1..6, got {comps!r}")
@@ -171,17 +201,28 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
                 _err(f'{where}: [[line]] {i}: rest {ln["rest"]!r} is not a quantity like "6564.61 Angstrom" ({exc})')
             if not q.unit.is_equivalent(u.AA, equivalencies=u.spectral()):
                 _err(f"{where}: [[line]] {i}: rest {ln['rest']!r} must be a wavelength, frequency or energy")
+            if not (q.isscalar and np.isfinite(q.value) and q.value > 0):
+                _err(f"{where}: [[line]] {i}: rest {ln['rest']!r} must be one positive, finite value")
             med = ln.get("medium")
             if q.unit.physical_type == "length" and med not in ("air", "vacuum"):
                 _err(f"{where}: [[line]] {i}: medium must be 'air' or 'vacuum' for a rest wavelength, got {med!r}")
             entry["rest"] = str(ln["rest"])
             entry["medium"] = med
         entry["label"] = str(ln.get("label", entry.get("name", entry.get("rest"))))
+        if not slug(entry["label"]):
+            _err(f"{where}: [[line]] {i}: label {entry['label']!r} has no letters or digits to name its columns")
+        clash = next((other for other in lines if slug(other["label"]) == slug(entry["label"])), None)
+        if clash is not None:
+            _err(
+                f"{where}: [[line]] {i}: label {entry['label']!r} gives the same column names as {clash['label']!r} "
+                f"({slug(entry['label'])}_...); give each line its own label"
+            )
         lines.append(entry)
     kin = data.get("kinematics", {})
     bad = set(kin) - _ALLOWED["kinematics"]
     if bad:
-        _err(f"{where}: [kinematics]: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['kinematics'])}")
+        _unknown(where, "[kinematics]", bad, _ALLOWED["kinematics"])
+    beta_max = _number(where, "[kinematics]", "beta_max", kin.get("beta_max", BETA_MAX_DEFAULT), lo=0, lo_open=True, hi=0.9999)
     model = kin.get("model", "none")
     if model not in MODELS:
         _err(f"{where}: [kinematics] model must be one of {sorted(MODELS)}, got {model!r}")
@@ -190,7 +231,7 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
     sp = data.get("spectra", {})
     bad = set(sp) - _ALLOWED["spectra"]
     if bad:
-        _err(f"{where}: [spectra]: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['spectra'])}")
+        _unknown(where, "[spectra]", bad, _ALLOWED["spectra"])
     medium = sp.get("medium")
     if medium not in (None, "air", "vacuum"):
         _err(f"{where}: [spectra] medium must be 'air' or 'vacuum', got {medium!r}")
@@ -205,23 +246,33 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
     fit = data.get("fit", {})
     bad = set(fit) - _ALLOWED["fit"]
     if bad:
-        _err(f"{where}: [fit]: unknown key(s) {sorted(bad)}; allowed: {sorted(_ALLOWED['fit'])}")
+        _unknown(where, "[fit]", bad, _ALLOWED["fit"])
     kind = fit.get("kind", "emission")
     if kind not in ("emission", "absorption"):
         _err(f"{where}: [fit] kind must be 'emission' or 'absorption', got {kind!r}")
-    deg = fit.get("continuum_degree", 1)
-    if not isinstance(deg, int) or not 0 <= deg <= 3:
-        _err(f"{where}: [fit] continuum_degree must be an integer 0..3, got {deg!r}")
+    continuum = fit.get("continuum", "auto")
+    if continuum not in ("auto", "polynomial", "powerlaw"):
+        _err(f"{where}: [fit] continuum must be 'auto' (chosen per spectrum by BIC), 'polynomial' or 'powerlaw', got {continuum!r}")
+    deg = fit.get("continuum_degree")
+    if deg is not None:
+        deg = _number(where, "[fit]", "continuum_degree", deg, lo=0, hi=3, integer=True)
+        if continuum == "powerlaw":
+            _err(f"{where}: [fit] continuum_degree applies to a polynomial continuum, not continuum = 'powerlaw'")
     tie = fit.get("tie", False)
     if not isinstance(tie, bool):
         _err(f"{where}: [fit] tie must be true or false, got {tie!r}")
     if tie and len({ln["components"] for ln in lines}) > 1:
         _err(f"{where}: [fit] tie = true needs the same number of components for every line")
-    window = float(fit.get("window", 6.0))
-    window_kms = float(fit.get("window_kms", 3000.0))
-    z_min, z_max = float(fit.get("z_min", -0.9)), float(fit.get("z_max", 3.0))
-    if not (window > 0 and window_kms > 0 and -1 < z_min < z_max):
-        _err(f"{where}: [fit] needs window > 0, window_kms > 0 and -1 < z_min < z_max")
+    window = float(_number(where, "[fit]", "window", fit.get("window", 6.0), lo=0, lo_open=True))
+    window_kms = float(_number(where, "[fit]", "window_kms", fit.get("window_kms", 3000.0), lo=0, lo_open=True))
+    # default search range: the redshifts a speed up to beta_max can give (head-on to straight away)
+    from .kinematics import redshift
+
+    z_lo, z_hi = float(redshift(beta_max, 0.0)), float(redshift(beta_max, 180.0))
+    z_min = float(_number(where, "[fit]", "z_min", fit.get("z_min", round(z_lo, 6)), lo=-1, lo_open=True))
+    z_max = float(_number(where, "[fit]", "z_max", fit.get("z_max", round(z_hi, 6)), lo=-1, lo_open=True))
+    if not z_min < z_max:
+        _err(f"{where}: [fit] needs z_min < z_max, got z_min = {z_min!r}, z_max = {z_max!r}")
     return BatchConfig(
         tuple(tuple(sorted(ln.items())) for ln in lines),
         model,
@@ -230,6 +281,7 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
         sp.get("flux_unit"),
         tie,
         kind,
+        continuum,
         deg,
         window,
         window_kms,
@@ -340,6 +392,7 @@ def _fitters(cfg, unit, medium, cache):
                         components=lines[0]["components"],
                         tie=True,
                         kind=cfg["kind"],
+                        continuum=cfg["continuum"],
                         continuum_degree=cfg["continuum_degree"],
                         z_range=z_range,
                         window=cfg["window"],
@@ -357,6 +410,7 @@ def _fitters(cfg, unit, medium, cache):
                         medium=medium,
                         components=ln["components"],
                         kind=cfg["kind"],
+                        continuum=cfg["continuum"],
                         continuum_degree=cfg["continuum_degree"],
                         z_range=z_range,
                         window=cfg["window"],
@@ -395,10 +449,13 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         )
     row: dict = {"axis_unit": arr.axis_unit}
     flags = set()
-    redchi = []
+    notes: list = []
+    redchi, pvals, conts = [], [], []
     for _lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
         rows, info = fitter.measure(arr.axis, arr.flux, arr.sigma)
         redchi.append(info["redchi"])
+        pvals.append(info["p_value"])
+        conts.append(info["continuum"])
         for r in rows:
             pre = f"{slug(r['line'])}_{r['component']}"
             row[f"{pre}_centre"] = float(r["centre"])
@@ -408,6 +465,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
             row[f"{pre}_fwhm"] = float(r["fwhm"])
             row[f"{pre}_flux"] = float(r["flux"])
             flags.update(r["flags"])
+            notes += [n for n in r["notes"] if n not in notes]
     if cfg["model"] == "jet-pair":
         pairs = []
         for ln in _line_dicts(cfg):
@@ -426,9 +484,17 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
             b, be, th, te = f.beta, f.beta_err, f.value("viewing_angle"), f.error("viewing_angle")
         if not np.isfinite(b) or not np.isfinite(th):
             flags.add("unphysical_pair")
+            notes.append("no equal-speed jet pair gives these redshifts ((1 + z_a)(1 + z_r) < 1, or |cos theta| > 1)")
+        elif not (np.isfinite(be) and be > 0 and np.isfinite(te) and te > 0):
+            flags.add("no_errors")
+            notes.append("the speed or angle has no finite, non-zero uncertainty")
         row.update({"beta": b, "beta_err": be, "viewing_angle": th, "viewing_angle_err": te})
     row["redchi"] = float(max(redchi)) if redchi else math.nan
+    row["p_value"] = float(min(pvals)) if pvals else math.nan
+    row["continuum"] = "; ".join(conts)
     row["flags"] = ",".join(sorted(flags))
+    row["status"] = "suspect" if flags else "ok"
+    row["message"] = "; ".join(notes) if notes else ("; ".join(sorted(flags)) if flags else "")
     return row
 
 
@@ -444,10 +510,10 @@ def process_chunk(paths: list[str], fmts: list[str | None], cfg: dict) -> list[d
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 row = _fit_one(p, fmt, cfg, cache)
-            row.update({"file": p, "status": "ok", "message": ""})
+            row["file"] = p
         except Exception as exc:  # one bad file must not stop the batch
             msg = str(exc).replace("\n", " ")
-            row = {"file": p, "status": "error", "message": f"{type(exc).__name__}: {msg}"[:500]}
+            row = {"file": p, "status": "error", "message": f"{type(exc).__name__}: {msg}"}
         row["seconds"] = time.perf_counter() - t0
         out.append(row)
     return out
@@ -644,6 +710,8 @@ def _to_table(rows: list[dict]):
         "viewing_angle",
         "viewing_angle_err",
         "redchi",
+        "p_value",
+        "continuum",
         "flags",
         "axis_unit",
         "seconds",
@@ -661,7 +729,7 @@ def _to_table(rows: list[dict]):
     data = {}
     for k in cols:
         vals = [r.get(k) for r in rows]
-        if k in ("file", "status", "message", "flags", "axis_unit", "config_hash", "dopplerkit_version"):
+        if k in ("file", "status", "message", "flags", "continuum", "axis_unit", "config_hash", "dopplerkit_version"):
             data[k] = [("" if v is None else str(v)) for v in vals]
         elif k in ("file_size", "file_mtime_ns"):
             data[k] = np.array([-1 if v is None else int(v) for v in vals], dtype=np.int64)

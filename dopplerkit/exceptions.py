@@ -10,9 +10,11 @@ __all__ = [
     "DegenerateGeometryWarning",
     "DopplerkitWarning",
     "FitAtBoundWarning",
+    "FitQualityWarning",
     "MediumWarning",
     "NearLightSpeedWarning",
     "UnresolvedLineWarning",
+    "WeakLineWarning",
 ]
 
 
@@ -41,4 +43,8 @@ class MediumWarning(DopplerkitWarning):
 
 
 class WeakLineWarning(DopplerkitWarning):
-    """A fitted line component has S/N < 3: it may not be there (or is blended with another)."""
+    """A fitted component is not needed by the data, is blended with another, or its identification is contradicted."""
+
+
+class FitQualityWarning(DopplerkitWarning):
+    """A fit's chi-square probability is too low, or its uncertainties are not finite: its errors are not trustworthy."""

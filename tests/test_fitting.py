@@ -15,7 +15,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 import dopplerkit as dk
-from dopplerkit.exceptions import FitAtBoundWarning
+from dopplerkit.exceptions import FitAtBoundWarning, FitQualityWarning
 from dopplerkit.fitting import compare_models, fit_constraints, fit_jet_pair, fit_precessing_jet, fits_table
 from dopplerkit.measure import measure_lines
 from dopplerkit.models import LineComponent, precessing_jet_redshifts, synthesize_spectrum
@@ -64,7 +64,10 @@ def test_calibration_from_spectra():
             LineComponent("H-alpha", z=zr, fwhm=700 * u.km / u.s, strength=2.0),
         ]
         s = synthesize_spectrum(grid, comps, snr=25, seed=rng, resolution=3000)
-        t = measure_lines(s, "H-alpha", components=2, method="fast")
+        with warnings.catch_warnings():
+            # a right model still has chi-square probability < 1e-3 once in a thousand: flagged, not an error here
+            warnings.simplefilter("ignore", FitQualityWarning)
+            t = measure_lines(s, "H-alpha", components=2, method="fast")
         f = fit_jet_pair(t["z"][0], t["z"][1], t["z_err"][0], t["z_err"][1])
         cover_b += abs(f.beta - beta) < f.beta_err
         cover_t += abs(f.params["viewing_angle"].value - ang) < f.error("viewing_angle")
