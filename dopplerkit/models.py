@@ -260,7 +260,9 @@ class LineComponent:
     fwhm : Quantity (speed)
         Intrinsic full width at half maximum as a velocity.
     strength : float
-        Peak height relative to the continuum: > 0 emission, < 0 absorption (-0.3 = 30 % deep).
+        > 0 emission: peak height relative to the continuum at the line centre, the line ADDED
+        to the continuum; < 0 absorption: depth as a fraction of the background (-0.3 = 30 % deep),
+        the background MULTIPLIED by (1 + strength x profile).
     profile : {"gaussian", "lorentzian"}
     label : str
         Free label, e.g. "approaching".
@@ -374,7 +376,9 @@ def synthesize_spectrum(
         else:
             raise ValueError(f"profile must be 'gaussian' or 'lorentzian', got {comp.profile!r}")
         if comp.strength >= 0:
-            emis += comp.strength * shape
+            # emission adds to the continuum (its flux does not depend on the continuum's shape);
+            # the strength sets the peak height relative to the continuum at the line centre
+            emis += comp.strength * float(np.interp(centre, x[np.argsort(x)], cont[np.argsort(x)])) * shape
         else:
             absf *= 1.0 + comp.strength * shape
         truth.append(
@@ -387,7 +391,7 @@ def synthesize_spectrum(
                 "strength": float(comp.strength),
             }
         )
-    flux = cont * (1.0 + emis) * absf
+    flux = (cont + emis) * absf
     level = float(np.median(np.abs(cont)))
     if snr is not None:
         sigma = np.full_like(x, level / float(snr))

@@ -541,3 +541,21 @@ def test_scheduler_without_workers_is_exit_code_3(small, tmp_path, capsys):
     finally:
         os.killpg(sched.pid, signal.SIGTERM)
         sched.wait(timeout=30)
+
+
+def test_suspect_rows_are_kept_filled_and_give_exit_code_1(tmp_path, capsys):
+    # one spectrum whose counter-jet is not there: the row is suspect (not ok, not an error), says why,
+    # keeps its numbers, and the run exits with 1 (README)
+    d = tmp_path / "spectra"
+    d.mkdir()
+    grid = np.arange(5000.0, 8800.0, 2.5) * u.AA
+    one = synthesize_spectrum(grid, [LineComponent("H-alpha", z=-0.05, fwhm=700 * u.km / u.s, strength=2.0)], snr=30, seed=1)
+    write_spectrum(one, d / "one_jet.fits")
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(CONFIG)
+    out = tmp_path / "r.ecsv"
+    assert main(["batch", str(d), "--config", str(cfg), "--output", str(out)]) == 1
+    assert "ok 0, suspect 1, failed 0" in capsys.readouterr().err
+    t = Table.read(out)
+    assert t["status"][0] == "suspect" and "not detected" in t["message"][0]
+    assert np.isfinite(t["h_alpha_approaching_z"][0]) and t["continuum"][0]

@@ -15,7 +15,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 import dopplerkit as dk
-from dopplerkit.exceptions import FitAtBoundWarning, FitQualityWarning
+from dopplerkit.exceptions import FitAtBoundWarning, FitQualityWarning, WeakLineWarning
 from dopplerkit.fitting import compare_models, fit_constraints, fit_jet_pair, fit_precessing_jet, fits_table
 from dopplerkit.measure import measure_lines
 from dopplerkit.models import LineComponent, precessing_jet_redshifts, synthesize_spectrum
@@ -65,8 +65,10 @@ def test_calibration_from_spectra():
         ]
         s = synthesize_spectrum(grid, comps, snr=25, seed=rng, resolution=3000)
         with warnings.catch_warnings():
-            # a right model still has chi-square probability < 1e-3 once in a thousand: flagged, not an error here
+            # flags are advisory here (this test checks coverage of every fit): a right model still has chi-square
+            # probability < 1e-3 once in a thousand, and the other jet's He I may be flagged as a possible blend
             warnings.simplefilter("ignore", FitQualityWarning)
+            warnings.simplefilter("ignore", WeakLineWarning)
             t = measure_lines(s, "H-alpha", components=2, method="fast")
         f = fit_jet_pair(t["z"][0], t["z"][1], t["z_err"][0], t["z_err"][1])
         cover_b += abs(f.beta - beta) < f.beta_err
@@ -91,7 +93,10 @@ def test_precessing_jet_recovery_from_spectra():
             LineComponent("H-alpha", z=z2[k], fwhm=900 * u.km / u.s, strength=2.0),
         ]
         s = synthesize_spectrum(grid, comps, snr=30, seed=rng, resolution=3000)
-        tab = measure_lines(s, "H-alpha", components=2, method="fast")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", WeakLineWarning)  # possible blends with the other jet's lines: advisory here
+            warnings.simplefilter("ignore", FitQualityWarning)
+            tab = measure_lines(s, "H-alpha", components=2, method="fast")
         m1.append(tab["z"][0])
         m2.append(tab["z"][1])
         e1.append(tab["z_err"][0])

@@ -53,7 +53,9 @@ def test_two_components_recovered_within_errors():
         s, za, zr = jet_pair_spectrum(
             rng.uniform(0.05, 0.3), rng.uniform(15, 85), fwhm=rng.uniform(300, 1500), snr=rng.uniform(15, 60), seed=seed
         )
-        t = measure_lines(s, "H-alpha", components=2, method="fast")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", WeakLineWarning)  # possible blends with the other jet's lines: advisory here
+            t = measure_lines(s, "H-alpha", components=2, method="fast")
         pulls = (t["z"] - np.array([za, zr])) / t["z_err"]
         hits += int(np.all(np.abs(pulls) < 3))
     assert hits >= 0.95 * n
@@ -169,3 +171,79 @@ def test_profiles_lorentzian_voigt():
     # lmfit's Voigt ties gamma to sigma: not the Lorentzian these data have, and the fit says so
     assert t["status"][0] == "suspect" and "poor_fit" in t["flags"][0]
     assert any(issubclass(w.category, FitQualityWarning) for w in caught)
+
+
+# ---------------------------------------------------------------------------
+# Status that means something (invented spectra; the checks are statistical or structural,
+# common practice, no source unless named)
+# ---------------------------------------------------------------------------
+@pytest.mark.slow
+def test_faint_single_lines_ok_rows():
+    # S/N 5 per pixel, lines from barely there to clear. Gaussian errors would hold the truth 68.3% of the time
+    # within 1 sigma; curvature errors of lines at line S/N ~10 do worse (a known limit, stated in FLAGS["faint"]
+    # and the README): measured 57-62% here. This guards against regressions and wild ok rows.
+    rng = np.random.default_rng(42)
+    grid = np.arange(6000.0, 7200.0, 2.0) * u.AA
+    pulls = []
+    for _ in range(400):
+        z = rng.uniform(-0.02, 0.02)
+        comp = LineComponent("H-alpha", z=z, fwhm=800 * u.km / u.s, strength=rng.uniform(0.3, 1.0))
+        s = synthesize_spectrum(grid, [comp], snr=5, seed=rng)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t = measure_lines(s, "H-alpha", method="fast")
+        if t["status"][0] == "ok":
+            pulls.append((t["z"][0] - z) / t["z_err"][0])
+    pulls = np.abs(pulls)
+    assert len(pulls) > 150
+    assert np.mean(pulls > 5) < 0.01, np.sort(pulls)[-5:]
+    assert 0.55 <= np.mean(pulls < 1) <= 0.73, np.mean(pulls < 1)
+
+
+def test_wrong_line_configured_is_suspect_and_says_why():
+    # the data hold H-alpha only; asked for H-beta, the fit finds the H-alpha features but the case-B
+    # H-alpha/H-beta = 2.86 (Osterbrock & Ferland 2006, table 4.2; from memory) says H-alpha must then sit at
+    # 6565 (1 + z) with more flux, and nothing is there
+    grid = np.arange(3800.0, 11000.0, 2.0) * u.AA
+    s = synthesize_spectrum(grid, [LineComponent("H-alpha", z=0.01, fwhm=800 * u.km / u.s, strength=2.0)], snr=20, seed=3)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        t = measure_lines(s, "H-beta", method="fast", z_range=(-0.5, 0.8))
+    assert t["status"][0] == "suspect" and "id_contradicted" in t["flags"][0]
+    assert "probably not H-beta" in t["message"][0]
+    assert any(issubclass(w.category, WeakLineWarning) for w in caught)
+    # the right line: ok
+    t = measure_lines(s, "H-alpha", method="fast", z_range=(-0.5, 0.8))
+    assert t["status"][0] == "ok", t["message"][0]
+
+
+def test_line_at_the_edge_is_suspect():
+    grid = np.arange(6000.0, 7200.0, 2.0) * u.AA
+    z = 6010.0 / 6564.614 - 1  # centre 10 Angstrom from the blue end, FWHM ~ 17 Angstrom
+    s = synthesize_spectrum(grid, [LineComponent("H-alpha", z=z, fwhm=800 * u.km / u.s, strength=2.0)], snr=30, seed=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t = measure_lines(s, "H-alpha", method="fast")
+    assert "edge" in t["flags"][0] and t["status"][0] == "suspect"
+
+
+@pytest.mark.parametrize("method", ["fast", "lmfit"])
+def test_steep_power_law_continuum_is_chosen_and_reported(method):
+    # F_lambda ~ lambda**-3 over 3800-11200 Angstrom: a straight line is the wrong continuum, BIC says so
+    grid = np.arange(3800.0, 11200.0, 2.0) * u.AA
+    cont = {"kind": "powerlaw", "amplitude": 1.0, "index": -3.0, "pivot": 6500 * u.AA}
+    za, zr = dk.redshift(0.2, 40), dk.redshift(0.2, 140)
+    comps = [
+        LineComponent("H-alpha", z=za, fwhm=900 * u.km / u.s, strength=1.5),
+        LineComponent("H-alpha", z=zr, fwhm=900 * u.km / u.s, strength=0.8),
+    ]
+    s = synthesize_spectrum(grid, comps, continuum=cont, snr=25, seed=5, resolution=4000)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", WeakLineWarning)  # the other jet's lines may be flagged as possible blends
+        t = measure_lines(s, "H-alpha", components=2, method=method)
+    assert t.meta["continuum"] != "polynomial 0"
+    pulls = (t["z"] - np.array([za, zr])) / t["z_err"]
+    assert np.all(np.abs(pulls) < 4), pulls
+    # fixed by the caller: kept
+    t = measure_lines(s, "H-alpha", components=2, method=method, continuum_degree=2)
+    assert t.meta["continuum"] == "polynomial 2"

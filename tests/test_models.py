@@ -115,3 +115,17 @@ def test_synthesize_noise_is_seeded():
 def test_synthesize_bad_profile():
     with pytest.raises(ValueError, match="profile must be 'gaussian' or 'lorentzian'"):
         synthesize_spectrum(np.linspace(6000, 7000, 10) * u.AA, [LineComponent("H-alpha", profile="box")])
+
+
+def test_emission_adds_to_a_sloped_continuum():
+    # An emission line adds its flux to the continuum, whatever the continuum's slope (common practice, no
+    # source): the residual is a symmetric Gaussian of peak strength x continuum at the centre.
+    x = np.linspace(5500.0, 6000.0, 2001) * u.AA
+    cont = {"kind": "powerlaw", "amplitude": 1.0, "index": -3.0, "pivot": 5750 * u.AA}
+    s = synthesize_spectrum(x, [LineComponent(5750.0 * u.AA, z=0.0, fwhm=1000 * u.km / u.s, strength=2.0)], continuum=cont)
+    bare = synthesize_spectrum(x, [], continuum=cont)
+    line = s.flux.value - bare.flux.value
+    xv = x.value
+    assert_allclose(line.max(), 2.0, rtol=1e-4)
+    centroid = np.sum(xv * line) / np.sum(line)
+    assert abs(centroid - 5750.0) < 1e-3  # no pull towards the brighter blue side
