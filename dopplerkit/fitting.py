@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 
-from .exceptions import DegenerateGeometryWarning, FitAtBoundWarning
+from .exceptions import DegenerateGeometryWarning, FitAtBoundWarning, FitQualityWarning
 from .kinematics import SPEED_OF_LIGHT_KMS, _counterjet_ratio, _dimensionless, _proper_motion_rates, solve_jet_pair
 
 __all__ = [
@@ -100,6 +100,11 @@ class KinematicFit:
     def chisqr(self) -> float:
         return float(self.result.chisqr)
 
+    @property
+    def p_value(self) -> float:
+        """Chi-square probability of the fit for its degrees of freedom (NaN for an exactly determined fit)."""
+        return _p_value(self.result)
+
     def value(self, name):
         return self.params[name].value
 
@@ -120,7 +125,11 @@ class KinematicFit:
         r = self.result
         lines.append(f"  chi-square {r.chisqr:.4g} for {r.ndata} data, {r.nvarys} free parameters (dof {r.nfree})")
         if r.nfree > 0:
-            lines.append(f"  reduced chi-square {r.redchi:.4g}; AIC {r.aic:.4g}; BIC {r.bic:.4g}")
+            lines.append(
+                f"  reduced chi-square {r.redchi:.4g}; chi-square probability {self.p_value:.3g}; AIC {r.aic:.4g}; BIC {r.bic:.4g}"
+            )
+        else:
+            lines.append("  exactly determined (no degrees of freedom): the fit cannot test the model")
         if self.posterior:
             lines.append("  posterior (emcee): median [16th, 84th percentile]")
             for k, v in self.posterior["summary"].items():
@@ -147,7 +156,9 @@ class KinematicFit:
         return (
             f"<div class='dopplerkit-fit'><b>dopplerkit {html.escape(self.model)} fit</b>"
             "<table><tr><th>parameter</th><th>value</th><th>uncertainty</th><th></th></tr>" + "".join(rows) + "</table>"
-            f"<p>chi-square {r.chisqr:.4g}, dof {r.nfree}</p>" + (f"<ul>{notes}</ul>" if notes else "") + "</div>"
+            f"<p>chi-square {r.chisqr:.4g}, dof {r.nfree}, probability {self.p_value:.3g}</p>"
+            + (f"<ul>{notes}</ul>" if notes else "")
+            + "</div>"
         )
 
     def sample(
@@ -229,6 +240,51 @@ def _check_bounds(params, names, notes):
         notes.append("uncertainties could not be estimated (singular covariance at the solution)")
 
 
+#: A kinematic fit whose chi-square probability is below this gets a note (and, opt-in, scaled errors).
+P_VALUE_MIN = 1e-3
+
+
+def _p_value(res) -> float:
+    from scipy.special import gammaincc
+
+    if res.nfree <= 0 or not np.isfinite(res.chisqr):
+        return float("nan")
+    return float(gammaincc(0.5 * res.nfree, 0.5 * res.chisqr))
+
+
+def _quality(res, notes, scale_errors: bool) -> None:
+    """Judge the fit by its chi-square probability; opt-in: scale the errors by sqrt(reduced chi-square)."""
+    p = _p_value(res)
+    if not (p < P_VALUE_MIN):
+        return
+    msg = (
+        f"poor fit: chi-square {res.chisqr:.4g} for {res.nfree} degrees of freedom (probability {p:.2g}): the model "
+        "misses something in the data (e.g. a systemic velocity, nodding, a second period) or the errors are too small"
+    )
+    if scale_errors:
+        f = float(np.sqrt(res.redchi))
+        for par in res.params.values():
+            if par.stderr is not None:
+                par.stderr *= f
+        msg += f"; uncertainties scaled by sqrt(reduced chi-square) = {f:.3g} (scale_errors=True)"
+    else:
+        msg += "; the uncertainties assume the model is right (pass scale_errors=True to scale them by sqrt(reduced chi-square))"
+    notes.append(msg)
+    warnings.warn(msg, FitQualityWarning, stacklevel=3)
+
+
+def _measured(value, name, *, positive=False) -> float:
+    """A finite float (an error: > 0) for a fit input; ValueError naming it otherwise."""
+    if isinstance(value, bool):
+        raise TypeError(f"{name} must be a number, got {value!r}")
+    v = float(_dimensionless(value, name))
+    if not np.isfinite(v):
+        raise ValueError(f"{name} must be a finite number, got {v!r}")
+    if positive and not v > 0:
+        raise ValueError(f"{name} must be > 0 (a 1-sigma uncertainty), got {v!r}")
+    return v
+
+
 def _near_c(params, notes):
     b = params["beta"].value
     if b > 0.99:
@@ -264,7 +320,7 @@ def _jet_pair_model(eta, theta_deg, relativistic=True):
     return _pair_z(eta, np.cos(theta_deg * _DEG), relativistic)
 
 
-def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *, relativistic: bool = True):
+def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *, relativistic: bool = True, scale_errors: bool = False):
     """Fit beta and viewing angle to the redshifts of a jet/counter-jet pair.
 
     Parameters
@@ -275,6 +331,9 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
         Their 1-sigma uncertainties (> 0).
     relativistic : bool
         False fits the Galilean reading z = -/+ beta cos theta instead (no transverse term).
+    scale_errors : bool
+        Scale the uncertainties by sqrt(reduced chi-square) when the fit is poor (only an
+        unphysical pair can be: the fit is otherwise exactly determined).
 
     Returns
     -------
@@ -301,17 +360,24 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
             )
         )
     )
-    if np.any(~(ea > 0)) or np.any(~(er > 0)):
-        raise ValueError("z_approaching_err and z_receding_err must be > 0")
+    for name, arr in (("z_approaching_err", ea), ("z_receding_err", er)):
+        if np.any(~(arr > 0)) or np.any(~np.isfinite(arr)):
+            raise ValueError(
+                f"{name} must be finite and > 0 (1-sigma uncertainties), got {float(arr.ravel()[np.flatnonzero(~((arr > 0) & np.isfinite(arr)))[0]])!r}"
+            )
+    for name, arr in (("z_approaching", za), ("z_receding", zr)):
+        bad = ~np.isfinite(arr) | (arr <= -1)
+        if np.any(bad):
+            raise ValueError(f"{name} must be a finite redshift > -1, got {float(arr.ravel()[np.flatnonzero(bad)[0]])!r}")
     if za.ndim == 0:
-        return _fit_one_pair(float(za), float(zr), float(ea), float(er), relativistic)
+        return _fit_one_pair(float(za), float(zr), float(ea), float(er), relativistic, scale_errors)
     return [
-        _fit_one_pair(float(a), float(r), float(e1), float(e2), relativistic)
+        _fit_one_pair(float(a), float(r), float(e1), float(e2), relativistic, scale_errors)
         for a, r, e1, e2 in zip(za.ravel(), zr.ravel(), ea.ravel(), er.ravel(), strict=True)
     ]
 
 
-def _fit_one_pair(za, zr, ea, er, relativistic=True):
+def _fit_one_pair(za, zr, ea, er, relativistic=True, scale_errors=False):
     import lmfit
 
     with warnings.catch_warnings():
@@ -343,6 +409,7 @@ def _fit_one_pair(za, zr, ea, er, relativistic=True):
         _near_c(res.params, notes)
         if (1 + za) * (1 + zr) < 1:
             notes.append("the pair is unphysical for equal-speed opposite jets ((1+z_a)(1+z_r) < 1): the fit leaves a residual")
+    _quality(res, notes, scale_errors)
     fit = KinematicFit(res.params, res, "jet-pair" if relativistic else "jet-pair (Galilean)", notes, {"z": data, "z_err": err}, residual)
     return fit
 
@@ -373,7 +440,10 @@ def _precess_cos(t, incl, cone, period, t0):
 
 
 def _precess_model(p, t, relativistic=True):
-    return _pair_z(p["eta"], _precess_cos(t, p["inclination"], p["cone_angle"], p["period"], p["t0"]), relativistic)
+    """Redshifts of both jets; a systemic redshift composes by product: 1 + z = (1 + z_sys)(1 + z_kin)."""
+    z1, z2 = _pair_z(p["eta"], _precess_cos(t, p["inclination"], p["cone_angle"], p["period"], p["t0"]), relativistic)
+    zs = p.get("z_systemic", 0.0)
+    return z1 + zs * (1 + z1), z2 + zs * (1 + z2)
 
 
 def _precess_start(t, z1, z2, e, period_range, relativistic=True):
@@ -430,6 +500,8 @@ def fit_precessing_jet(
     allow_label_swap: bool = True,
     relativistic: bool = True,
     start: dict | None = None,
+    z_systemic=None,
+    scale_errors: bool = False,
 ):
     """Fit the kinematic model of two opposite precessing jets to a redshift time series.
 
@@ -452,13 +524,23 @@ def fit_precessing_jet(
     start : dict, optional
         Starting values overriding the automatic ones (keys beta, inclination, cone_angle,
         period, t0).
+    z_systemic : float or (float, float), optional
+        The binary's systemic redshift (v_sys/c for small speeds), composed by product with
+        the jets' kinematic redshifts. A number fixes it; ``(value, sd)`` fits it with that
+        Gaussian prior. It cannot be fitted freely: in this model only Gamma (1 + z_sys) is
+        fixed by the data, so a systemic velocity and beta are degenerate. When not given it
+        is taken as 0 and the notes say how far beta would move per 100 km/s of it.
+    scale_errors : bool
+        Scale the uncertainties by sqrt(reduced chi-square) when the fit is poor.
 
     Returns
     -------
     KinematicFit
         Params ``beta``, ``inclination``, ``cone_angle`` (deg), ``period``, ``t0`` (days),
-        ``gamma`` (derived). Notes report the inclination <-> cone angle degeneracy (the
-        model is symmetric under their swap: both solutions are listed) and label swaps.
+        ``gamma`` (derived), ``z_systemic``. Notes report the inclination <-> cone angle
+        degeneracy (the model is symmetric under their swap: both solutions are listed), label
+        swaps, a poor chi-square probability, and a period left in the residuals (nodding, a
+        second period), with its false-alarm probability.
 
     Notes
     -----
@@ -472,12 +554,24 @@ def fit_precessing_jet(
     tt = np.asarray(t.to_value(u.d) if isinstance(t, u.Quantity) else t, float)
     z1 = np.asarray(z_1, float)
     z2 = np.asarray(z_2, float)
+    if not np.all(np.isfinite(tt)):
+        raise ValueError("t must be finite at every epoch")
+    zsys_prior = None
+    if z_systemic is None:
+        zsys0 = 0.0
+    elif np.ndim(z_systemic) == 0:
+        zsys0 = _measured(z_systemic, "z_systemic")
+    else:
+        if len(z_systemic) != 2:
+            raise ValueError(f"z_systemic must be a number or (value, sd), got {z_systemic!r}")
+        zsys0 = _measured(z_systemic[0], "z_systemic value")
+        zsys_prior = (zsys0, _measured(z_systemic[1], "z_systemic sd", positive=True))
     e1 = np.broadcast_to(np.asarray(z_err, float), tt.shape).copy()
     e2 = np.broadcast_to(np.asarray(z_err if z_2_err is None else z_2_err, float), tt.shape).copy()
     if tt.ndim != 1 or z1.shape != tt.shape or z2.shape != tt.shape:
         raise ValueError(f"t, z_1 and z_2 must be 1-D of equal length, got shapes {tt.shape}, {z1.shape}, {z2.shape}")
-    if np.any(~(e1 > 0)) or np.any(~(e2 > 0)):
-        raise ValueError("z_err must be > 0")
+    if np.any(~(e1 > 0)) or np.any(~(e2 > 0)) or not np.all(np.isfinite(e1)) or not np.all(np.isfinite(e2)):
+        raise ValueError("z_err (and z_2_err) must be finite and > 0 at every epoch")
     both = np.isfinite(z1) & np.isfinite(z2)
     if both.sum() < 6:
         raise ValueError(f"need at least 6 epochs with both lines measured, got {int(both.sum())}")
@@ -490,6 +584,7 @@ def fit_precessing_jet(
     params.add("cone_angle", value=float(np.clip(s["cone_angle"], 0.1, 89.9)), min=0.0, max=90.0)
     params.add("period", value=float(s["period"]), min=float(s["period"]) * 0.5, max=float(s["period"]) * 1.5)
     params.add("t0", value=float(s["t0"]), min=float(s["t0"]) - float(s["period"]), max=float(s["t0"]) + float(s["period"]))
+    params.add("z_systemic", value=zsys0, vary=zsys_prior is not None)
     ok1, ok2 = np.isfinite(z1), np.isfinite(z2)
 
     def residual(p):
@@ -502,6 +597,8 @@ def fit_precessing_jet(
             s2 = np.where(ok1, (m2 - np.nan_to_num(z1)) / e1, 0.0)
             swap = (s1 * s1 + s2 * s2) < (r1 * r1 + r2 * r2)
             r1, r2 = np.where(swap, s1, r1), np.where(swap, s2, r2)
+        if zsys_prior is not None:
+            return np.concatenate([r1, r2, [(v["z_systemic"] - zsys_prior[0]) / zsys_prior[1]]])
         return np.concatenate([r1, r2])
 
     # refine the phase: a coarse scan over t0 guards against a periodogram phase off by half a cycle
@@ -516,7 +613,7 @@ def fit_precessing_jet(
     p = res.params
     v = p.valuesdict()
     m1, m2 = _precess_model(v, tt, relativistic)
-    swapped = int(np.sum(both & ((m1 - z2) ** 2 + (m2 - z1) ** 2 < (m1 - z1) ** 2 + (m2 - z2) ** 2)))
+    swapped = int(np.sum(_swapped(m1, m2, z1, z2, both)))
     notes = []
     _check_bounds(p, ["eta", "inclination", "cone_angle", "period", "t0"], notes)
     notes.append(
@@ -530,8 +627,52 @@ def fit_precessing_jet(
         )
     if relativistic:
         _near_c(p, notes)
+        if zsys_prior is None:
+            g, b = p["gamma"].value, p["beta"].value
+            shift = (100.0 / SPEED_OF_LIGHT_KMS) / (g**3 * max(b, 1e-12))
+            notes.append(
+                f"systemic velocity taken as {zsys0 * SPEED_OF_LIGHT_KMS:.4g} km/s: the data fix only Gamma (1 + z_sys), so each "
+                f"100 km/s of systemic velocity not modelled moves beta by {shift:.2g} (give z_systemic= from other lines)"
+            )
+    _quality(res, notes, scale_errors)
+    _residual_periodicity(tt, z1, z2, m1, m2, e1, e2, _swapped(m1, m2, z1, z2, both), p["period"].value, notes)
     name = "precessing-jet" if relativistic else "precessing-jet (Galilean)"
     return KinematicFit(p, res, name, notes, {"t": tt, "z_1": z1, "z_2": z2, "z_err": e1, "z_2_err": e2, "swapped": swapped}, residual)
+
+
+def _swapped(m1, m2, z1, z2, both):
+    """Epochs whose two measured lines fit better the other way round."""
+    return both & ((m1 - z2) ** 2 + (m2 - z1) ** 2 < (m1 - z1) ** 2 + (m2 - z2) ** 2)
+
+
+def _residual_periodicity(t, z1, z2, m1, m2, e1, e2, swap, period, notes, fap_max: float = 1e-3):
+    """Note a period left in the residuals (Lomb-Scargle, astropy; false-alarm probability of Baluev 2008)."""
+    from astropy.timeseries import LombScargle
+
+    a1 = np.where(swap, z2, z1)
+    a2 = np.where(swap, z1, z2)
+    for name, resid, err in (
+        ("mean of the two jets", 0.5 * ((a1 - m1) + (a2 - m2)), 0.5 * np.hypot(e1, e2)),
+        ("half-difference of the two jets", 0.5 * ((a2 - m2) - (a1 - m1)), 0.5 * np.hypot(e1, e2)),
+    ):
+        ok = np.isfinite(resid)
+        if ok.sum() < 20:
+            return
+        tt, rr, ee = t[ok], resid[ok], err[ok]
+        span = np.ptp(tt)
+        if span <= 0 or not np.sum((rr / ee) ** 2) > 1e-12 * rr.size:
+            return  # noiseless or perfectly fitted data: nothing to search
+        ls = LombScargle(tt, rr, ee)
+        dt = np.median(np.diff(np.sort(tt)))
+        fmin, fmax = 1.0 / span, 0.5 / max(dt, span / (10 * tt.size))
+        freq, power = ls.autopower(minimum_frequency=fmin, maximum_frequency=fmax, samples_per_peak=10)
+        k = int(np.argmax(power))
+        fap = float(ls.false_alarm_probability(power[k], minimum_frequency=fmin, maximum_frequency=fmax))
+        if fap < fap_max:
+            notes.append(
+                f"the residuals ({name}) keep a period of {1 / freq[k]:.4g} d (false-alarm probability {fap:.1g}; "
+                f"precession period {period:.4g} d): nodding or a second period the model lacks"
+            )
 
 
 # ---------------------------------------------------------------------------
@@ -547,6 +688,7 @@ def fit_constraints(
     priors=None,
     relativistic: bool = True,
     start=None,
+    scale_errors: bool = False,
 ):
     """One beta-viewing angle inference from any mix of measurements.
 
@@ -569,12 +711,23 @@ def fit_constraints(
         False: the Galilean reading of the redshifts (no transverse term).
     start : dict, optional
         Starting beta and viewing_angle.
+    scale_errors : bool
+        Scale the uncertainties by sqrt(reduced chi-square) when the measurements disagree
+        (chi-square probability below 1e-3).
 
     Returns
     -------
     KinematicFit
         Params ``beta``, ``gamma`` (derived), ``viewing_angle`` (deg, 0 = straight at us) and
         ``distance_kpc`` when proper motions are used.
+
+    Raises
+    ------
+    ValueError
+        A measurement that is not finite, an uncertainty or prior width that is not > 0, a
+        distance or flux ratio that is not > 0, a redshift <= -1.
+    TypeError
+        A proper motion or distance without units.
 
     Notes
     -----
@@ -586,32 +739,74 @@ def fit_constraints(
 
     from .kinematics import GEOMETRIES
 
-    zp = [tuple(map(float, p)) for p in z_pairs]
-    sz = [(float(z), float(e), str(j)) for z, e, j in single_z]
-    for _z, _e, j in sz:
+    def redshift_value(v, name):
+        z = _measured(v, name)
+        if z <= -1:
+            raise ValueError(f"{name} must be a redshift > -1, got {z!r}")
+        return z
+
+    zp = []
+    for i, pair in enumerate(z_pairs):
+        if len(pair) != 4:
+            raise ValueError(f"z_pairs[{i}] must be (z_a, z_r, z_a_err, z_r_err), got {pair!r}")
+        za, zr, ea, er = pair
+        zp.append(
+            (
+                redshift_value(za, f"z_pairs[{i}] z_a"),
+                redshift_value(zr, f"z_pairs[{i}] z_r"),
+                _measured(ea, f"z_pairs[{i}] z_a_err", positive=True),
+                _measured(er, f"z_pairs[{i}] z_r_err", positive=True),
+            )
+        )
+    sz = []
+    for i, (z, e, j) in enumerate(single_z):
         if j not in ("approaching", "receding"):
-            raise ValueError(f"single_z jet must be 'approaching' or 'receding', got {j!r}")
+            raise ValueError(f"single_z[{i}] jet must be 'approaching' or 'receding', got {j!r}")
+        sz.append((redshift_value(z, f"single_z[{i}] z"), _measured(e, f"single_z[{i}] z_err", positive=True), str(j)))
     pm = []
-    for mu_a, ea, mu_r, er in proper_motions:
-        conv = u.rad / u.s
-        pm.append(tuple(q.to_value(conv) for q in (mu_a, ea, mu_r, er)))
+    conv = u.rad / u.s
+    for i, row in enumerate(proper_motions):
+        vals = []
+        for q, name in zip(row, ("mu_a", "mu_a_err", "mu_r", "mu_r_err"), strict=True):
+            if not isinstance(q, u.Quantity):
+                raise TypeError(f"proper_motions[{i}] {name} must be an angular-rate Quantity (e.g. mas/d), got {q!r}")
+            try:
+                vals.append(_measured(q.to_value(conv), f"proper_motions[{i}] {name}", positive=True))
+            except u.UnitConversionError:
+                raise u.UnitsError(f"proper_motions[{i}] {name} must be an angular rate (e.g. mas/d), got unit {q.unit!r}") from None
+        pm.append(tuple(vals))
     if pm and distance is None:
         raise ValueError("proper_motions need distance=(value, uncertainty) as length Quantities")
     fr = []
-    for R, Re, alpha, geometry in flux_ratios:
+    for i, (R, Re, alpha, geometry) in enumerate(flux_ratios):
         if geometry not in GEOMETRIES:
-            raise ValueError(f"flux ratio geometry must be 'blob' or 'jet', got {geometry!r}")
-        fr.append((float(R), float(Re), GEOMETRIES[geometry][0] + float(alpha)))
+            raise ValueError(f"flux_ratios[{i}] geometry must be 'blob' or 'jet', got {geometry!r}")
+        fr.append(
+            (
+                _measured(R, f"flux_ratios[{i}] R", positive=True),
+                _measured(Re, f"flux_ratios[{i}] R_err", positive=True),
+                GEOMETRIES[geometry][0] + _measured(alpha, f"flux_ratios[{i}] alpha"),
+            )
+        )
     priors = dict(priors or {})
     bad = set(priors) - {"beta", "viewing_angle"}
     if bad:
         raise ValueError(f"priors may be given for 'beta' and 'viewing_angle', got {sorted(bad)}")
+    for k, v in priors.items():
+        if len(v) != 2:
+            raise ValueError(f"priors[{k!r}] must be (mean, sd), got {v!r}")
+        priors[k] = (_measured(v[0], f"priors[{k!r}] mean"), _measured(v[1], f"priors[{k!r}] sd", positive=True))
     if not (zp or sz or pm or fr):
         raise ValueError("give at least one measurement (z_pairs, single_z, proper_motions or flux_ratios)")
     d_km = d_err_km = None
     if pm:
-        d_km = distance[0].to_value(u.km)
-        d_err_km = distance[1].to_value(u.km)
+        if len(distance) != 2 or not all(isinstance(q, u.Quantity) for q in distance):
+            raise TypeError(f"distance must be (value, uncertainty) as length Quantities, got {distance!r}")
+        try:
+            d_km = _measured(distance[0].to_value(u.km), "distance", positive=True)
+            d_err_km = _measured(distance[1].to_value(u.km), "distance uncertainty", positive=True)
+        except u.UnitConversionError:
+            raise u.UnitsError(f"distance must be lengths (e.g. kpc), got units {distance[0].unit!r}, {distance[1].unit!r}") from None
 
     def model_z(eta, th, cosfac):
         return _pair_z(eta, np.cos(th * _DEG) * cosfac, relativistic)[0]
@@ -678,6 +873,7 @@ def fit_constraints(
         _near_c(res.params, notes)
     if res.ndata <= 1:
         notes.append("one measurement cannot fix two parameters: the result is one point of a degenerate curve (see redshift_locus)")
+    _quality(res, notes, scale_errors)
     return KinematicFit(res.params, res, "constraints" if relativistic else "constraints (Galilean)", notes, {}, residual)
 
 

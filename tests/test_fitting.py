@@ -7,6 +7,7 @@ synthetic data made with dopplerkit.models, with fixed seeds.
 
 from __future__ import annotations
 
+import re
 import warnings
 
 import astropy.units as u
@@ -197,5 +198,79 @@ def test_emcee_posterior():
 
 
 def test_bad_errors():
-    with pytest.raises(ValueError, match="must be > 0"):
+    with pytest.raises(ValueError, match=r"z_approaching_err must be finite and > 0 \(1-sigma uncertainties\), got 0.0"):
         fit_jet_pair(0.1, 0.2, 0.0, 0.1)
+
+
+# ---------------------------------------------------------------------------
+# A fit says when it is poor, and what it could not separate (invented data; model of
+# Abell & Margon 1979, Nature 279, 701; Margon 1984, ARA&A 22, 507)
+# ---------------------------------------------------------------------------
+def _precessing_data(n=400, *, nod_deg=0.0, v_sys_kms=0.0, seed=4, err=2e-4):
+    rng = np.random.default_rng(seed)
+    t = np.sort(rng.uniform(0, 600, n))
+    cone = (21.0 + nod_deg * np.sin(2 * np.pi * t / 6.06)) * u.deg  # nodding: the cone angle wobbles at 6.06 d
+    z1, z2 = precessing_jet_redshifts(t, 0.25, 70 * u.deg, cone, 150.0, 10.0)
+    zs = v_sys_kms / 299792.458
+    z1, z2 = z1 + zs * (1 + z1), z2 + zs * (1 + z2)  # (1 + z) factors compose by product (PHYSICS conventions)
+    return t, z1 + rng.normal(0, err, n), z2 + rng.normal(0, err, n), err
+
+
+def test_nodding_gives_a_poor_fit_note_and_names_the_period():
+    t, z1, z2, e = _precessing_data(nod_deg=3.0)
+    with pytest.warns(FitQualityWarning, match="poor fit"):
+        f = fit_precessing_jet(t, z1, z2, e)
+    assert f.p_value < 1e-3
+    text = " ".join(f.notes)
+    assert "poor fit" in text
+    # the nodding at 6.06 d, or its sidebands with the 150 d precession (1/P = 1/6.06 -/+ 1/150: 6.31 or 5.83 d)
+    found = [float(x) for x in re.findall(r"keep a period of ([0-9.]+) d", text)]
+    assert any(abs(p - q) < 0.05 for p in found for q in (6.06, 6.31, 5.83)), found
+    assert "chi-square probability" in f.report()
+    # opt-in: errors scaled by sqrt(reduced chi-square)
+    with pytest.warns(FitQualityWarning):
+        g = fit_precessing_jet(t, z1, z2, e, scale_errors=True)
+    assert_allclose(g.beta_err / f.beta_err, np.sqrt(f.result.redchi), rtol=1e-6)
+
+
+def test_systemic_velocity_known_or_stated():
+    # 70 km/s of systemic velocity: given, beta comes back; not given, the note gives the shift per 100 km/s,
+    # d beta = (100 km/s / c)/(Gamma^3 beta) from Gamma (1 + z_sys) = const (derivative of the model above)
+    t, z1, z2, e = _precessing_data(v_sys_kms=70.0, err=2e-5)
+    f = fit_precessing_jet(t, z1, z2, e, z_systemic=70.0 / 299792.458)
+    assert abs(f.beta - 0.25) < 3 * f.beta_err
+    g = fit_precessing_jet(t, z1, z2, e)
+    note = next(n for n in g.notes if "systemic velocity" in n)
+    per100 = (100 / 299792.458) / (dk.lorentz_factor(0.25) ** 3 * 0.25)
+    assert f"{per100:.2g}" in note
+    assert_allclose(g.beta - 0.25, 0.7 * per100, rtol=0.1)
+    h = fit_precessing_jet(t, z1, z2, e, z_systemic=(70.0 / 299792.458, 1e-5))
+    assert abs(h.value("z_systemic") * 299792.458 - 70.0) < 10
+
+
+@pytest.mark.parametrize(
+    "kwargs,match",
+    [
+        ({"z_pairs": [(np.nan, 0.1, 1e-3, 1e-3)]}, r"z_pairs\[0\] z_a must be a finite number, got nan"),
+        ({"z_pairs": [(-0.1, 0.1, 0.0, 1e-3)]}, r"z_pairs\[0\] z_a_err must be > 0"),
+        ({"z_pairs": [(-1.5, 0.1, 1e-3, 1e-3)]}, r"z_pairs\[0\] z_a must be a redshift > -1"),
+        ({"single_z": [(0.1, 1e-3, "up")]}, r"single_z\[0\] jet must be"),
+        ({"z_pairs": [(-0.1, 0.1, 1e-3, 1e-3)], "priors": {"beta": (0.2, 0.0)}}, r"priors\['beta'\] sd must be > 0"),
+        ({"flux_ratios": [(-3.0, 0.5, 0.7, "jet")]}, r"flux_ratios\[0\] R must be > 0"),
+        (
+            {
+                "proper_motions": [(10 * u.mas / u.d, 1 * u.mas / u.d, 5 * u.mas / u.d, 1 * u.mas / u.d)],
+                "distance": (-3 * u.kpc, 1 * u.kpc),
+            },
+            r"distance must be > 0",
+        ),
+    ],
+)
+def test_fit_constraints_refuses_bad_measurements(kwargs, match):
+    with pytest.raises(ValueError, match=match):
+        fit_constraints(**kwargs)
+
+
+def test_fit_jet_pair_refuses_impossible_redshift():
+    with pytest.raises(ValueError, match=r"z_approaching must be a finite redshift > -1, got -1.5"):
+        fit_jet_pair(-1.5, 0.1, 1e-3, 1e-3)
