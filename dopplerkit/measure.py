@@ -139,6 +139,9 @@ class FitSetup:
     labels: list = field(default_factory=list)
     companions: list = field(default_factory=list)
     same_gas: list = field(default_factory=list)
+    #: "air" when the spectral axis is in air: the fit then runs on the axis converted to vacuum
+    #: (a Doppler shift scales vacuum wavelengths) and centres are reported back in air.
+    axis_medium: str | None = None
 
     @property
     def jet_pair(self) -> bool:
@@ -183,6 +186,8 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
     z_range = tuple(float(v) for v in z_range)
     if len(z_range) != 2 or not (-1 < z_range[0] < z_range[1]) or not np.all(np.isfinite(z_range)):
         raise ValueError(f"z_range must be (z_min, z_max) with -1 < z_min < z_max, both finite, got {z_range!r}")
+    axis_medium = medium if unit.is_equivalent(u.m) else None
+    medium = "vacuum" if unit.is_equivalent(u.m) else medium  # rest values in vacuum; an air axis is converted to match
     names, rest, companions = [], [], []
     for ln in lines:
         comp = []
@@ -215,6 +220,7 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
         z_range,
         companions=companions,
         same_gas=same_gas,
+        axis_medium=axis_medium,
     )
 
 
@@ -477,7 +483,9 @@ class LineFitter:
         if unit.is_equivalent(u.m) and medium not in ("air", "vacuum"):
             raise ValueError(f"medium must be 'air' or 'vacuum' for a wavelength axis, got {medium!r}")
         setup = _make_setup(lines, unit, medium, components, tie, kind, "gaussian", continuum, continuum_degree, z_range)
-        return cls(setup, window, window_kms)
+        fitter = cls(setup, window, window_kms)
+        fitter.unit = unit
+        return fitter
 
     def measure(self, x, y, sigma):
         """Everything for one spectrum as plain arrays: clean, sort, scale, start, fit, assess. Returns (rows, info).
@@ -488,8 +496,14 @@ class LineFitter:
         order = np.argsort(x)
         fscale = float(np.median(np.abs(y))) or float(np.median(sigma)) or 1.0
         x, y, sigma = x[order], y[order] / fscale, sigma[order] / fscale
+        unit = getattr(self, "unit", None)
+        if self.setup.axis_medium == "air":
+            if unit is None:
+                raise ValueError("an air-wavelength set-up needs its axis unit: build the fitter with LineFitter.for_lines")
+            x = _to_fit_axis(self.setup, x, unit)
         starts, cont = _starts(self.setup, x, y, sigma)
         rows, info = self.fit_arrays(x, y, sigma, starts=starts, cont=cont)
+        _rows_to_axis(self.setup, rows, unit)
         for r in rows:
             r["flux"] *= fscale
             r["flux_err"] *= fscale
@@ -1037,6 +1051,29 @@ def _window_mask(setup, x, starts, window, window_kms):
     return keep
 
 
+def _to_fit_axis(setup, x, unit):
+    """The axis the fit runs on: vacuum wavelengths for an air axis (Morton 2000 through specutils)."""
+    if setup.axis_medium != "air":
+        return x
+    from .lines import air_to_vacuum
+
+    return air_to_vacuum(x * u.Unit(unit)).to_value(unit)
+
+
+def _rows_to_axis(setup, rows, unit):
+    """Centres (and their errors) back from vacuum to the air of the spectral axis."""
+    if setup.axis_medium != "air" or not rows:
+        return
+    from .lines import vacuum_to_air
+
+    vac = np.array([r["centre"] for r in rows])
+    air = vacuum_to_air(vac * u.Unit(unit)).to_value(unit)
+    h = 1e-6 * vac
+    slope = (vacuum_to_air((vac + h) * u.Unit(unit)).to_value(unit) - air) / h  # d lambda_air / d lambda_vac
+    for r, a, d in zip(rows, air, slope, strict=True):
+        r["centre"], r["centre_err"] = float(a), float(r["centre_err"] * d)
+
+
 def _clean(x, y, sigma, mask=None):
     x = np.asarray(x, float)
     y = np.asarray(y, float)
@@ -1253,7 +1290,8 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
         }
     )
     t.meta["note"] = (
-        "z is against the rest value in the medium of the spectral axis; v_radial is the relativistic radial speed (positive receding)"
+        "z compares vacuum wavelengths (an air axis is converted for the fit; centre is in the axis's medium, rest in vacuum); "
+        "v_radial is the relativistic radial speed (positive receding)"
     )
     return t
 
@@ -1392,12 +1430,14 @@ def measure_lines(
     # work in units of the typical flux so lmfit's numerical derivatives are well scaled
     fscale = float(np.median(np.abs(y))) or float(np.median(sig)) or 1.0
     x, y, sig = x[order], y[order] / fscale, sig[order] / fscale
+    x = _to_fit_axis(setup, x, unit)
     starts, cont0 = _starts(setup, x, y, sig)
     if method == "fast":
         rows, info = LineFitter(setup, window, window_kms).fit_arrays(x, y, sig, starts=starts, cont=cont0)
         extra = info
     else:
         rows, info, extra = _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms)
+    _rows_to_axis(setup, rows, unit)
     info["medium"] = med
     for r in rows:
         r["flux"] *= fscale

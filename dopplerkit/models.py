@@ -327,7 +327,9 @@ def synthesize_spectrum(
     seed : int or numpy Generator, optional
         Seed of the noise.
     medium : {"vacuum", "air"}
-        Medium of a wavelength axis; catalogue air lines are converted to it.
+        Medium of a wavelength axis. Lines are shifted in vacuum (z scales vacuum wavelengths,
+        also for ultraviolet lines seen redshifted into the optical) and placed at their air
+        wavelength on an air axis.
     meta : dict, optional
         Extra metadata; ``meta["medium"]`` and ``meta["dopplerkit_truth"]`` (the components)
         are added.
@@ -357,11 +359,16 @@ def synthesize_spectrum(
     fwhm_to_sigma = 1.0 / (2.0 * np.sqrt(2.0 * np.log(2.0)))
     truth = []
     for comp in components:
+        # a Doppler shift scales vacuum wavelengths: shift the vacuum rest value, then express it in the axis's medium
         if isinstance(comp.line, u.Quantity):
-            r = rest_value(comp.line, unit, medium=medium, line_medium="vacuum").value
+            r = rest_value(comp.line, unit, medium="vacuum", line_medium="vacuum").value
         else:
-            r = rest_value(comp.line, unit, medium=medium if wavelike else "vacuum").value
+            r = rest_value(comp.line, unit, medium="vacuum").value
         centre = r * (1.0 + comp.z) if wavelike else r / (1.0 + comp.z)
+        if wavelike and medium == "air":
+            from .lines import vacuum_to_air
+
+            centre = float(vacuum_to_air(centre * unit).to_value(unit))
         width_v = u.Quantity(comp.fwhm, u.km / u.s).to_value(u.km / u.s)
         fw = abs(centre) * width_v / SPEED_OF_LIGHT_KMS
         inst = 0.0 if resolution is None else abs(centre) / float(resolution)

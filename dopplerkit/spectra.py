@@ -84,8 +84,42 @@ def _axis_k(unit: u.UnitBase) -> int:
     raise u.UnitsError(f"spectral axis must be wavelength, frequency, energy or wavenumber, got unit {unit!r}")
 
 
-def flux_scaling(flux_unit: u.UnitBase) -> tuple[int, bool] | None:
+def _flux_reading(flux_unit, axis_unit=None):
+    """(k, photon, luminosity) reading of a flux unit, or None; the axis decides dimensional ties."""
+    unit = u.Unit(flux_unit)
+    bases = getattr(unit, "bases", [])
+    photon = False
+    if u.ph in bases or u.ct in bases:
+        photon = True
+        unit = unit * u.Unit(f"1/{'ph' if u.ph in bases else 'ct'}")
+    readings = list(_READINGS)
+    if axis_unit is not None:
+        # units can coincide dimensionally: erg/s/cm is a luminosity per unit wavelength or a flux per
+        # unit wavenumber. A density is per unit of the spectral axis it comes with: try that reading first.
+        ax = u.Unit(axis_unit)
+        readings.sort(key=lambda r: not ax.is_equivalent(r[1]))
+    for k, per, total in readings:
+        target = total if not photon else (_PHOT_M2 if total is _W_M2 else None)
+        if target is not None and (unit * per).is_equivalent(target):
+            return k, photon, total is u.W
+    if not photon:  # a photon flux density written without ph or ct, e.g. 1/(s cm2 keV)
+        for k, per, total in readings:
+            if total is _W_M2 and (unit * per).is_equivalent(_PHOT_M2):
+                return k, True, False
+    return None
+
+
+def flux_scaling(flux_unit: u.UnitBase, axis_unit: u.UnitBase | None = None) -> tuple[int, bool] | None:
     """How a flux density unit depends on the spectral coordinate.
+
+    Parameters
+    ----------
+    flux_unit : unit or str
+        Unit of the flux (or luminosity) density.
+    axis_unit : unit or str, optional
+        Unit of the spectral axis it comes with. Where two readings coincide dimensionally
+        (erg/s/cm: a luminosity per unit wavelength or a flux per unit wavenumber), the density
+        per unit of this axis wins; without it the per-wavelength reading is taken.
 
     Returns
     -------
@@ -94,23 +128,8 @@ def flux_scaling(flux_unit: u.UnitBase) -> tuple[int, bool] | None:
         wavelength; ``photon`` True for photon (count) flux densities. None when the unit
         is not a flux density (dimensionless, normalised, counts per pixel, ...).
     """
-    unit = u.Unit(flux_unit)
-    bases = getattr(unit, "bases", [])
-    photon = False
-    if u.ph in bases or u.ct in bases:
-        photon = True
-        unit = unit * u.Unit(f"1/{'ph' if u.ph in bases else 'ct'}")
-    # order matters where units coincide dimensionally (erg/s/Angstrom is a luminosity per
-    # wavelength or a flux per wavenumber): the common reading comes first
-    for k, per, total in _READINGS:
-        target = total if not photon else (_PHOT_M2 if total is _W_M2 else None)
-        if target is not None and (unit * per).is_equivalent(target):
-            return k, photon
-    if not photon:  # a photon flux density written without ph or ct, e.g. 1/(s cm2 keV)
-        for k, per, total in _READINGS:
-            if total is _W_M2 and (unit * per).is_equivalent(_PHOT_M2):
-                return k, True
-    return None
+    r = _flux_reading(flux_unit, axis_unit)
+    return None if r is None else r[:2]
 
 
 def _check_beaming(beaming) -> float:
@@ -121,7 +140,7 @@ def _check_beaming(beaming) -> float:
 
 
 @functools.lru_cache(maxsize=64)
-def beaming_exponent(flux_unit, beaming: Beaming = None) -> float:
+def beaming_exponent(flux_unit, beaming: Beaming = None, axis_unit=None) -> float:
     """Power of the Doppler factor that multiplies a flux density of this unit under ``beaming``.
 
     ``F_x,obs(x_obs) = delta**n F_x,emit(x_emit)`` with n = q + 1 - k (minus 1 for photon fluxes),
@@ -132,7 +151,7 @@ def beaming_exponent(flux_unit, beaming: Beaming = None) -> float:
     q = _check_beaming(beaming)
     if beaming is None:
         return 0.0
-    scaling = flux_scaling(u.Unit(flux_unit))
+    scaling = flux_scaling(u.Unit(flux_unit), axis_unit)
     if scaling is None:
         raise u.UnitsError(
             f"flux unit {u.Unit(flux_unit)!r} is not a flux (or luminosity) density, so beaming={beaming!r} cannot be applied; "
@@ -161,23 +180,32 @@ def _factors(beta, theta, gamma, beaming, z_cosmo, flux_unit, axis_unit, cosmolo
         _scalar(gamma, "gamma")
     b, g, _ = _speed(beta, gamma)
     delta = float(doppler_factor(theta=theta, **({"gamma": g} if gamma is not None else {"beta": b})))
-    zc = float(np.asarray(getattr(z_cosmo, "value", z_cosmo)))
-    if not np.isfinite(zc) or zc <= -1:
-        raise ValueError(f"z_cosmo must be a finite number > -1, got {z_cosmo!r}")
+    zc = _z_cosmo(z_cosmo)
     _axis_k(axis_unit)
-    flux_factor = delta ** beaming_exponent(flux_unit, beaming)
+    flux_factor = delta ** beaming_exponent(flux_unit, beaming, axis_unit)
+    out_unit = flux_unit
     if cosmology is not None:
-        scaling = flux_scaling(flux_unit)
-        if scaling is None:
-            raise u.UnitsError(f"flux unit {flux_unit!r} is not a flux (or luminosity) density, so cosmology cannot be applied")
-        k, photon = scaling
+        reading = _flux_reading(flux_unit, axis_unit)
+        if reading is None or not (reading[2] if not inverse else True):
+            raise u.UnitsError(
+                f"with cosmology= the input flux must be a luminosity density (e.g. erg/s/Angstrom, W/Hz), got {u.Unit(flux_unit)!r}; "
+                "for a flux density leave cosmology out (z_cosmo then only stretches the axis)"
+            )
+        k, photon, _ = reading
+        if not zc > 0:
+            raise ValueError(f"cosmology= needs z_cosmo > 0 (the luminosity distance is zero at z = 0), got {zc!r}")
         dl = cosmology.luminosity_distance(zc)
-        flux_factor *= (1.0 + zc) ** (k + (1 if photon else 0))
-        flux_factor /= (4 * np.pi * dl**2).to_value(u.cm**2)
+        area = (4 * np.pi * dl**2).to(u.cm**2)
+        flux_factor *= (1.0 + zc) ** (k + (1 if photon else 0)) / area.value
+        out_unit = u.Unit(flux_unit) / u.cm**2 if not inverse else u.Unit(flux_unit) * u.cm**2
+        if inverse and not _flux_reading(out_unit, axis_unit)[2]:
+            raise u.UnitsError(f"deboost with cosmology= needs a flux density in, got {u.Unit(flux_unit)!r}")
     axis_factor = delta / (1.0 + zc)
     if inverse:
         axis_factor, flux_factor = 1.0 / axis_factor, 1.0 / flux_factor
-    theta_deg = float(np.degrees(np.asarray(theta.to_value(u.rad) if isinstance(theta, u.Quantity) else theta)))
+    from .kinematics import _angle
+
+    theta_deg = float(np.degrees(_angle(theta, "theta")))
     record = {
         "operation": "deboost" if inverse else "boost",
         "beta": float(b),
@@ -187,8 +215,24 @@ def _factors(beta, theta, gamma, beaming, z_cosmo, flux_unit, axis_unit, cosmolo
         "z_cosmo": zc,
         "cosmology": getattr(cosmology, "name", None) if cosmology is not None else None,
         "doppler_factor": delta,
+        "flux_unit": str(out_unit),
     }
     return axis_factor, flux_factor, record
+
+
+def _z_cosmo(z_cosmo) -> float:
+    """The host redshift as a float; a velocity Quantity (km/s) is refused, it is not a redshift."""
+    from .kinematics import _dimensionless
+
+    if isinstance(z_cosmo, bool):
+        raise TypeError(f"z_cosmo must be a redshift (a number), got {z_cosmo!r}")
+    zc = np.asarray(_dimensionless(z_cosmo, "z_cosmo"), dtype=float)
+    if zc.size != 1:
+        raise ValueError(f"z_cosmo must be a single redshift, got an array of shape {zc.shape}")
+    zc = float(zc)
+    if not np.isfinite(zc) or zc <= -1:
+        raise ValueError(f"z_cosmo must be a finite redshift > -1, got {zc!r}")
+    return zc
 
 
 def spectral_medium(spectrum, default: str | None = None) -> str | None:
@@ -271,7 +315,7 @@ def _transform(spectrum, axis_factor, flux_factor, record, medium_method="Morton
         # arithmetic on the SpectralAxis itself: specutils then skips re-deriving the axis (~30 % faster)
         new_axis = axis * axis_factor if k == 1 else axis / axis_factor
     flux = spectrum.flux
-    new_flux = (np.asarray(flux.value) * flux_factor) << flux.unit
+    new_flux = (np.asarray(flux.value) * flux_factor) << u.Unit(record.get("flux_unit", flux.unit))
     meta = dict(spectrum.meta or {})
     meta["dopplerkit_history"] = [*list(meta.get("dopplerkit_history", [])), record]
     meta["dopplerkit_frame"] = "observer" if record["operation"] == "boost" else "source"
@@ -307,11 +351,12 @@ def boost_spectrum(spectrum, beta=None, theta=0.0, *, gamma=None, beaming: Beami
         None moves the axis only; "blob" (q = 3) and "jet" (q = 2) also transform the flux
         density exactly (see the module notes for the exponent per flux unit).
     z_cosmo : float
-        Host cosmological redshift composed after the kinematic shift:
-        (1 + z_total) = (1 + z_cosmo)/delta. Flux values are not dimmed unless ``cosmology``.
+        Host cosmological redshift (a number, never a velocity) composed after the kinematic
+        shift: (1 + z_total) = (1 + z_cosmo)/delta. Flux values are not dimmed unless ``cosmology``.
     cosmology : astropy.cosmology.Cosmology, optional
-        Read the input flux as a luminosity density and return the flux density at the
-        luminosity distance D_L(z_cosmo).
+        Read the input flux as a luminosity density (e.g. erg/s/Angstrom; a flux unit is
+        refused) and return the flux density at the luminosity distance D_L(z_cosmo), in that
+        unit per cm**2. Needs z_cosmo > 0.
 
     Returns
     -------
@@ -371,10 +416,8 @@ def boost_arrays(
     """
     axis_unit = u.Unit(axis_unit)
     k = _axis_k(axis_unit)
-    n = beaming_exponent(u.Unit(flux_unit) if flux_unit is not None else u.one, beaming)
-    zc = float(np.asarray(getattr(z_cosmo, "value", z_cosmo)))
-    if not np.isfinite(zc) or zc <= -1:
-        raise ValueError(f"z_cosmo must be a finite number > -1, got {z_cosmo!r}")
+    n = beaming_exponent(u.Unit(flux_unit) if flux_unit is not None else u.one, beaming, axis_unit)
+    zc = _z_cosmo(z_cosmo)
     delta = np.asarray(doppler_factor(beta, theta, gamma=gamma))
     if delta.ndim:
         delta = delta[..., None]  # one spectrum per speed/angle, along the last axis

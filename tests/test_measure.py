@@ -247,3 +247,23 @@ def test_steep_power_law_continuum_is_chosen_and_reported(method):
     # fixed by the caller: kept
     t = measure_lines(s, "H-alpha", components=2, method=method, continuum_degree=2)
     assert t.meta["continuum"] == "polynomial 2"
+
+
+@pytest.mark.parametrize("method", ["fast", "lmfit"])
+def test_ultraviolet_line_on_an_air_axis(method):
+    # C IV 1548 (vacuum; below 2000 Angstrom lines are vacuum by convention, Morton 2000, ApJS 130, 403) at z = 2
+    # lands at 4644.6 Angstrom in vacuum, 4643.3 in air (Morton 2000 via specutils, the reference library):
+    # on an air axis the fit must find z = 2, not z off by the refractive index (~84 km/s)
+    from dopplerkit.lines import vacuum_to_air
+
+    z = 2.0
+    vac = 1548.202 * (1 + z)
+    air = vacuum_to_air(vac * u.AA).to_value(u.AA)
+    grid = np.arange(4500.0, 4800.0, 0.25) * u.AA
+    s = synthesize_spectrum(grid, [LineComponent("C IV 1548", z=z, fwhm=300 * u.km / u.s, strength=2.0)], snr=80, seed=4, medium="air")
+    assert abs(grid.value[np.argmax(s.flux.value)] - air) < 0.3
+    t = measure_lines(s, "C IV 1548", method=method, z_range=(1.5, 2.5))
+    assert abs(t["z"][0] - z) < 3 * t["z_err"][0]
+    assert abs(t["centre"][0].to_value(u.AA) - air) < 3 * t["centre_err"][0].to_value(u.AA)
+    # the same line read as if the axis were vacuum would be off by about (n - 1) c ~ 84 km/s
+    assert (vac - air) / vac * 299792.458 > 80

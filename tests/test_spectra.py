@@ -118,6 +118,29 @@ def test_cosmology_flux(spectrum_ghz):
     dl = Planck18.luminosity_distance(z).to_value(u.cm)
     assert_allclose(o.flux.value, (1 + z) * lum.flux.value / (4 * np.pi * dl**2), rtol=1e-12)
     assert_quantity_allclose(o.spectral_axis, lum.spectral_axis / (1 + z), rtol=1e-14)
+    # a luminosity density in, a flux density out (per cm2), and back
+    assert o.flux.unit == u.Unit("erg / (s Hz cm2)")
+    back = deboost_spectrum(o, 0.0, 0.0, z_cosmo=z, cosmology=Planck18)
+    assert back.flux.unit.is_equivalent(u.Unit("erg / (s Hz)"))
+    assert_allclose(back.flux.to_value(u.Unit("erg / (s Hz)")), lum.flux.value, rtol=1e-12)
+    # a flux density is not a luminosity density; z = 0 has no luminosity distance
+    with pytest.raises(u.UnitsError, match=r"must be a luminosity density"):
+        boost_spectrum(spectrum_ghz, 0.0, 0.0, z_cosmo=z, cosmology=Planck18)
+    with pytest.raises(ValueError, match=r"needs z_cosmo > 0"):
+        boost_spectrum(lum, 0.0, 0.0, z_cosmo=0.0, cosmology=Planck18)
+
+
+def test_flux_per_unit_wavenumber_scales_as_per_unit_frequency():
+    # F_sigma = F_nu |d nu/d sigma| with sigma = nu/c: a density per unit wavenumber transforms like F_nu
+    # (Rybicki & Lightman 1979, sec. 4.9), so its line integral scales as delta^(q+1) (delta^4 for a blob).
+    # erg/s/cm2/(1/cm) = erg/s/cm is also what a luminosity per unit wavelength looks like: the axis decides.
+    x = np.linspace(15000.0, 17000.0, 4001)
+    flux = 1.0 + 5.0 * np.exp(-0.5 * ((x - 16000.0) / 5.0) ** 2)
+    s = Spectrum(flux=flux * (u.erg / u.s / u.cm**2 / (1 / u.cm)), spectral_axis=x / u.cm)
+    assert flux_scaling(s.flux.unit, s.spectral_axis.unit) == (1, False)
+    obs = boost_spectrum(s, 0.3, 20 * u.deg, beaming="blob")
+    d = dk.doppler_factor(0.3, 20 * u.deg)
+    assert_allclose(_integral(obs) / _integral(s), d**4, rtol=1e-4)
 
 
 def test_bad_inputs(spectrum_angstrom):
@@ -128,8 +151,11 @@ def test_bad_inputs(spectrum_angstrom):
         boost_spectrum(norm, 0.5, 0.0, beaming="jet")
     with pytest.raises(ValueError, match=r"beta must be a single value"):
         boost_spectrum(spectrum_angstrom, [0.1, 0.2], 0.0)
-    with pytest.raises(ValueError, match=r"z_cosmo must be a finite number > -1"):
+    with pytest.raises(ValueError, match=r"z_cosmo must be a finite redshift > -1, got -2.0"):
         boost_spectrum(spectrum_angstrom, 0.1, 0.0, z_cosmo=-2)
+    # a velocity is not a redshift (3000 km/s is not z = 3000)
+    with pytest.raises(u.UnitsError, match=r"z_cosmo must be dimensionless"):
+        boost_spectrum(spectrum_angstrom, 0.1, 0.0, z_cosmo=3000 * u.km / u.s)
 
 
 def test_arrays_path_matches_spectrum(spectrum_angstrom):
