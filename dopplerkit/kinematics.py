@@ -538,6 +538,9 @@ def proper_motions(beta=None, theta=0.0, distance: u.Quantity | None = None, *, 
         d = np.asarray(distance.to_value(u.km), dtype=float)
     except u.UnitConversionError as exc:
         raise u.UnitsError(f"distance must be a length (e.g. kpc), got unit {distance.unit!r}") from exc
+    bad = ~(d > 0) & ~np.isnan(d)
+    if bad.any():
+        raise ValueError(f"distance must be > 0, got {_first_bad(d, bad)} km")
     b, _, omb = _speed(beta, gamma)
     th = _angle(theta, "theta")
     ma, mr = _proper_motion_rates(b, omb, th, d / SPEED_OF_LIGHT_KMS)
@@ -585,6 +588,9 @@ def solve_jet_pair(z_approaching, z_receding, *, on_unphysical: Literal["raise",
         # (1+z_a)(1+z_r) - 1 computed without cancellation
         prod_m1 = za + zr + za * zr
         bad = (prod_m1 < 0) | (za <= -1) | (zr <= -1)
+        # an exactly head-on pair has (1+z_a)(1+z_r) = 1; rounding of the inputs can push it a few ulp below
+        tiny = (prod_m1 < 0) & (prod_m1 > -8 * np.finfo(float).eps * (1.0 + np.abs(za) + np.abs(zr)))
+        bad = bad & ~tiny
         if bad.any() and on_unphysical == "raise":
             i = np.flatnonzero(bad.ravel())[0]
             where = "" if za.ndim == 0 else f" at index {np.unravel_index(i, za.shape)}"
@@ -699,7 +705,8 @@ def beta_cos_theta_from_ratio(ratio: ArrayLike, alpha: ArrayLike = 0.0, geometry
     float or ndarray
         beta cos theta = (R**(1/p) - 1)/(R**(1/p) + 1) = tanh(ln R/(2p)), in (-1, 1)
         (Lind & Blandford 1985; Miller-Jones, Blundell & Duffy 2004, ApJ 603, L21).
-        The value is a lower limit on beta and an upper limit on cos theta.
+        Since beta < 1, the value is a lower limit on beta and a LOWER limit on cos theta
+        (an upper limit on the viewing angle): theta <= arccos(beta cos theta).
     """
     p = _geometry_exponent(alpha, geometry)
     r = _dimensionless(ratio, "ratio")

@@ -69,8 +69,9 @@ def precessing_jet_redshifts(t, beta=None, inclination=0.0, cone_angle=0.0, peri
     -----
     psi = 2 pi (t - t0)/P; cos(angle_1) = sin(i) sin(cone) cos(psi) + cos(i) cos(cone);
     1 + z_1 = Gamma (1 - beta cos(angle_1)), 1 + z_2 = Gamma (1 + beta cos(angle_1))
-    (Abell & Margon 1979, Nature 279, 701; Margon 1984, ARA&A 22, 507). At every phase
-    (z_1 + z_2)/2 = Gamma - 1, the transverse Doppler shift.
+    (Abell & Margon 1979, Nature 279, 701; Margon 1984, ARA&A 22, 507). Without an emission
+    delay, (z_1 + z_2)/2 = Gamma - 1 at every phase, the transverse Doppler shift; with one,
+    the two jets are seen at different ejection times and the mean wanders about Gamma - 1.
     """
     b, g, _ = _speed(beta, gamma)
     i = _angle(inclination, "inclination")
@@ -94,6 +95,16 @@ def precessing_jet_redshifts(t, beta=None, inclination=0.0, cone_angle=0.0, peri
         tau = _time(emission_delay, "emission_delay")
         if np.any(tau < 0):
             raise ValueError(f"emission_delay must be >= 0, got {emission_delay!r}")
+        # t(t_ej) = t_ej + tau (1 -/+ beta cos angle_1(t_ej)) is one-to-one only while its slope stays
+        # positive: kappa = tau beta (2 pi / P) sin(i) sin(cone) < 1; beyond, one observed time sees blobs
+        # ejected at several times, and no single redshift per jet exists
+        kappa = np.max(tau * b * (2.0 * np.pi / p) * np.abs(np.sin(i) * np.sin(c)))
+        if kappa >= 1:
+            raise ValueError(
+                f"emission_delay is too long for this precession: tau beta (2 pi/P) sin(i) sin(cone) = {kappa:.3g} >= 1, so blobs "
+                "ejected at different times arrive together and no single redshift per jet exists; allowed: a delay below "
+                "P/(2 pi beta sin(i) sin(cone))"
+            )
         c1 = _delayed_cos(cos1, tt, tau, b, +1)
         c2 = _delayed_cos(cos1, tt, tau, b, -1)
     return _out(gm1 - gb * c1), _out(gm1 + gb * c2)
@@ -102,13 +113,12 @@ def precessing_jet_redshifts(t, beta=None, inclination=0.0, cone_angle=0.0, peri
 def _delayed_cos(cos1, t, tau, b, sign):
     """cos(angle_1) at the ejection time solving t = t_ej + tau (1 - sign beta cos1(t_ej))."""
     t_ej = t - tau
-    for _ in range(100):
+    for _ in range(10000):  # a contraction with rate kappa < 1 (checked by the caller)
         new = t - tau * (1.0 - sign * b * cos1(t_ej))
         if np.allclose(new, t_ej, rtol=0, atol=1e-12 * (1 + np.max(np.abs(t)))):
-            t_ej = new
-            break
+            return cos1(new)
         t_ej = new
-    return cos1(t_ej)
+    raise RuntimeError("the light-travel-time equation did not converge (kappa too close to 1); shorten emission_delay")
 
 
 def cone_directions(theta, opening_angle, *, n_polar: int = 24, n_azimuth: int = 48):

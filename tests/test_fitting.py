@@ -212,7 +212,10 @@ def _precessing_data(n=400, *, nod_deg=0.0, v_sys_kms=0.0, seed=4, err=2e-4):
     cone = (21.0 + nod_deg * np.sin(2 * np.pi * t / 6.06)) * u.deg  # nodding: the cone angle wobbles at 6.06 d
     z1, z2 = precessing_jet_redshifts(t, 0.25, 70 * u.deg, cone, 150.0, 10.0)
     zs = v_sys_kms / 299792.458
-    z1, z2 = z1 + zs * (1 + z1), z2 + zs * (1 + z2)  # (1 + z) factors compose by product (PHYSICS conventions)
+    z1, z2 = (
+        z1 + zs * (1 + z1),
+        z2 + zs * (1 + z2),
+    )  # (1 + z) factors compose by product (Davis & Lineweaver 2004, PASA 21, 97; from memory)
     return t, z1 + rng.normal(0, err, n), z2 + rng.normal(0, err, n), err
 
 

@@ -74,7 +74,7 @@ def test_transverse_doppler_source_frame(beta):
     # RL79 sec. 4.1: a photon emitted at theta' = 90 deg in the source frame is blueshifted, 1 + z = 1/Gamma.
     theta_obs = dk.aberrate(90 * u.deg, beta)
     assert_allclose(1 + dk.redshift(beta, theta_obs), 1 / dk.lorentz_factor(beta), rtol=1e-13)
-    # delta = Gamma (1 + beta cos theta') (PHYSICS conventions; RL79 eq. 4.11 in the source frame)
+    # delta = Gamma (1 + beta cos theta') (RL79 eq. 4.11 written in the source frame)
     for tp in (10, 60, 120, 170):
         th = dk.aberrate(tp * u.deg, beta)
         assert_allclose(dk.doppler_factor(beta, th), dk.lorentz_factor(beta) * (1 + beta * np.cos(np.radians(tp))), rtol=1e-13)
@@ -97,7 +97,7 @@ def test_aberration_round_trip(beta, th):
 
 @given(beta=betas, th=angles_deg)
 def test_redshift_is_inverse_doppler(beta, th):
-    # PHYSICS conventions: 1 + z = 1/delta (RL79 sec. 4.1).
+    # 1 + z = 1/delta (RL79 sec. 4.1).
     assert_allclose(1 + dk.redshift(beta, th * u.deg), 1 / dk.doppler_factor(beta, th * u.deg), rtol=1e-13)
 
 
@@ -200,7 +200,7 @@ def test_doppler_factor_high_precision_beta_near_one(theta):
 
 
 def test_textbook_form_loses_digits_where_we_do_not():
-    # Demonstrates the trap named in PHYSICS.md (common practice, no source).
+    # Demonstrates the cancellation in 1 - beta cos theta near beta -> 1, theta -> 0 (common practice, no source).
     gamma, theta = 1e6, 1e-7
     beta = np.sqrt(1 - 1 / gamma**2)
     textbook = 1 / (gamma * (1 - beta * np.cos(theta)))
@@ -211,7 +211,7 @@ def test_textbook_form_loses_digits_where_we_do_not():
 
 @pytest.mark.parametrize("beta", [1e-12, 1e-8, 1e-4, 0.01])
 def test_small_redshift_keeps_relative_precision(beta):
-    # z -> -beta cos theta + O(beta^2) as beta -> 0; compare with 50 digits (PHYSICS: z loses digits as beta -> 0).
+    # z -> -beta cos theta + O(beta^2) as beta -> 0; compare with 50 digits (z itself loses digits as beta -> 0: common practice, no source).
     for theta in (0.0, 0.7, np.pi / 2, 2.5):
         exact = 1 / mp_delta_from_beta(beta, theta) - 1
         assert_allclose(dk.redshift(beta, theta * u.rad), float(exact), rtol=1e-13)
@@ -303,7 +303,7 @@ def test_redshift_locus_reproduces_z(z):
 
 
 def test_compose_redshift():
-    # PHYSICS conventions: (1 + z_obs) = (1 + z_cosmo)(1 + z_kin), never a sum (common practice, no source).
+    # (1 + z_obs) = (1 + z_cosmo)(1 + z_kin), never a sum (Davis & Lineweaver 2004, PASA 21, 97; from memory).
     assert_allclose(dk.compose_redshift(1.0, -0.1), 0.8, rtol=1e-15)
     assert_allclose(dk.compose_redshift(1e-12, 2e-12), 3e-12, rtol=1e-9)
     assert_allclose(dk.compose_redshift([0.5, 1.0], 0.1), [0.65, 1.2], rtol=1e-15)
@@ -417,3 +417,18 @@ def test_bare_number_angles_are_degrees_everywhere(name):
             call(bad)
     with pytest.raises(u.UnitsError, match="must be an angle"):
         call(3.0 * u.m)
+
+
+def test_exact_head_on_pair_survives_rounding():
+    # head-on (theta = 0): (1 + z_a)(1 + z_r) = Gamma^2 (1 - beta^2) = 1 exactly (Rybicki & Lightman 1979, sec. 4.1);
+    # the rounded redshifts must still solve to beta and 0 deg, not "unphysical"
+    for beta in (0.1, 0.5, 0.9, 0.99):
+        za, zr = dk.redshift(beta, 0.0), dk.redshift(beta, 180.0)
+        b, th = dk.solve_jet_pair(za, zr)
+        assert_allclose(b, beta, rtol=1e-9)
+        assert th.to_value(u.deg) < 1e-3
+
+
+def test_negative_distance_is_refused():
+    with pytest.raises(ValueError, match=r"distance must be > 0, got -5.0 km"):
+        dk.proper_motions(0.3, 40.0, -5 * u.km)

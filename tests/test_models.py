@@ -52,13 +52,29 @@ def test_light_travel_time():
     a = precessing_jet_redshifts(t, 0.26, 79 * u.deg, 20 * u.deg, 162.5, 0.0)
     b = precessing_jet_redshifts(t, 0.26, 79 * u.deg, 20 * u.deg, 162.5, 0.0, emission_delay=0.0)
     assert_allclose(a, b, rtol=0, atol=1e-15)
-    # with a delay, jet 1 is seen at the direction of an earlier ejection: t_ej = t - tau (1 - beta cos)
-    tau = 2.0
-    z1, _ = precessing_jet_redshifts(t, 0.26, 79 * u.deg, 20 * u.deg, 162.5, 0.0, emission_delay=tau)
-    cos1 = (dk.lorentz_factor(0.26) - 1 - z1) / (dk.lorentz_factor(0.26) * 0.26)  # from 1 + z_1 = Gamma (1 - beta cos)
-    psi = 2 * np.pi * (t - tau * (1 - 0.26 * cos1)) / 162.5
-    expect = np.sin(np.radians(79)) * np.sin(np.radians(20)) * np.cos(psi) + np.cos(np.radians(79)) * np.cos(np.radians(20))
-    assert_allclose(cos1, expect, atol=1e-9)
+    # with a delay tau, the light seen at t left a blob ejected at t_ej with t = t_ej + tau (1 - beta cos angle_1(t_ej))
+    # (the blob moved beta c tau towards us: common practice, no source). Solved here independently by
+    # bracketing root-finding (scipy brentq), then 1 + z = Gamma (1 - beta cos) (Rybicki & Lightman 1979, sec. 4.1).
+    from scipy.optimize import brentq
+
+    beta, tau, period = 0.26, 2.0, 162.5
+    si, ci = np.sin(np.radians(79)), np.cos(np.radians(79))
+    sc, cc = np.sin(np.radians(20)), np.cos(np.radians(20))
+
+    def cos1(te):
+        return si * sc * np.cos(2 * np.pi * te / period) + ci * cc
+
+    z1, _ = precessing_jet_redshifts(t, beta, 79 * u.deg, 20 * u.deg, period, 0.0, emission_delay=tau)
+    g = dk.lorentz_factor(beta)
+    for tk, zk in zip(t, z1, strict=True):
+        te = brentq(lambda x, tk=tk: x + tau * (1 - beta * cos1(x)) - tk, tk - 3 * tau, tk + tau)
+        assert_allclose(zk, g * (1 - beta * cos1(te)) - 1, rtol=0, atol=1e-12)
+
+
+def test_too_long_emission_delay_is_refused():
+    # t(t_ej) stops being one-to-one when tau beta (2 pi/P) sin i sin(cone) >= 1 (derivative of the relation above)
+    with pytest.raises(ValueError, match=r"emission_delay is too long"):
+        precessing_jet_redshifts(np.linspace(0, 10, 5), 0.9, 90 * u.deg, 60 * u.deg, 5.0, 0.0, emission_delay=5.0)
 
 
 def test_cone_quadrature_matches_monte_carlo():
