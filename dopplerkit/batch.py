@@ -500,6 +500,15 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
 
 def process_chunk(paths: list[str], fmts: list[str | None], cfg: dict) -> list[dict]:
     """Fit a chunk of files; plain rows out. Never raises for a bad file: it becomes an error row."""
+
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        # the fits solve small matrices: threaded BLAS only costs here, and every worker is already one core
+        return _process_chunk(paths, fmts, cfg)
+
+
+def _process_chunk(paths, fmts, cfg):
     import warnings
 
     cache: dict = {}
@@ -859,6 +868,11 @@ def _run_locked(d, cfg, output, paths, workers, scheduler, resume, chunk_size, q
     rows = dict(keep)
     t_start = time.perf_counter()
     n_new = 0
+    pool = None
+    if chunks and not scheduler:
+        workers = _worker_count(workers, len(chunks), out, quiet)
+        if workers > 1:
+            pool = _make_pool(workers)  # before the progress bar starts its thread: the workers fork from a one-thread process
     bar = None
     if not quiet:
         from tqdm.auto import tqdm
@@ -887,7 +901,7 @@ def _run_locked(d, cfg, output, paths, workers, scheduler, resume, chunk_size, q
                     if scheduler:
                         _run_dask(scheduler, chunks, cfgd, record, cluster_timeout)
                     else:
-                        _run_local(workers, chunks, cfgd, record, out, quiet)
+                        _run_local(workers, chunks, cfgd, record, out, quiet, pool)
     except ClusterError as exc:
         code = EXIT_CLUSTER_LOST
         print(f"dopplerkit batch: error: {exc}; {n_new} new results kept in {journal}; run again with --resume", file=out)
@@ -956,21 +970,63 @@ def _dead_worker_rows(paths, reason):
     return [{"file": p, "status": "error", "message": reason, "seconds": math.nan} for p in paths]
 
 
-def _run_local(workers, chunks, cfgd, record, out=sys.stderr, quiet=False):
+def _worker_count(workers, n_chunks, out, quiet) -> int:
+    """Requested workers, capped at the cores available (with a note) and at the number of chunks."""
     cores = _available_cores()
     n = workers or cores
     if n > cores:
         if not quiet:
             print(f"dopplerkit batch: note: --workers {n} capped at the {cores} cores available", file=out)
         n = cores
-    n = min(n, len(chunks))
-    if n == 1:
+    return max(1, min(n, n_chunks))
+
+
+def _make_pool(n: int):
+    """A process pool whose workers are already running.
+
+    Forked from this process when it runs a single thread (nothing can hold a lock across the fork,
+    and forking inherits every imported module at no cost); otherwise (threads running, a retry) a
+    fork server that has imported what the workers need.
+    """
+    import multiprocessing as mp
+    import threading
+    from concurrent.futures import ProcessPoolExecutor
+
+    if "fork" in mp.get_all_start_methods() and threading.active_count() == 1:
+        ctx = mp.get_context("fork")
+    else:
+        method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
+        ctx = mp.get_context(method)
+        if method == "forkserver":
+            # everything a worker imports on its first spectrum, imported once in the server and inherited by every worker
+            ctx.set_forkserver_preload(
+                [
+                    "dopplerkit.batch",
+                    "dopplerkit.measure",
+                    "dopplerkit.io",
+                    "dopplerkit.lines",
+                    "astropy.io.fits",
+                    "astropy.table",
+                    "scipy.ndimage",
+                    "scipy.special",
+                    "scipy.optimize",
+                    "specutils.utils.wcs_utils",
+                ]
+            )
+    ex = ProcessPoolExecutor(max_workers=n, mp_context=ctx)
+    ex.submit(int).result()  # launches the workers now (with fork: all of them, before the pool's own thread starts)
+    return ex
+
+
+def _run_local(workers, chunks, cfgd, record, out=sys.stderr, quiet=False, pool=None):
+    n = workers if pool is not None else _worker_count(workers, len(chunks), out, quiet)
+    if n == 1 and pool is None:
         for paths, fmts in chunks:
             record(process_chunk(paths, fmts, cfgd))
         return
     pending = list(chunks)
     for attempt in (1, 2):
-        pending = _pool_pass(n, pending, cfgd, record)
+        pending = _pool_pass(pool if attempt == 1 and pool is not None else _make_pool(n), pending, cfgd, record)
         if not pending:
             return
         if attempt == 1 and not quiet:
@@ -979,18 +1035,11 @@ def _run_local(workers, chunks, cfgd, record, out=sys.stderr, quiet=False):
         record(_dead_worker_rows(paths, "WorkerDied: the worker process fitting this file died twice (killed, or out of memory)"))
 
 
-def _pool_pass(n, chunks, cfgd, record):
+def _pool_pass(ex, chunks, cfgd, record):
     """Run chunks in a process pool; return the chunks whose worker died (BrokenProcessPool)."""
-    import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor, as_completed
+    from concurrent.futures import as_completed
     from concurrent.futures.process import BrokenProcessPool
 
-    # forkserver: safe when the parent already runs threads (the progress bar), unlike fork
-    method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
-    ctx = mp.get_context(method)
-    if method == "forkserver":
-        ctx.set_forkserver_preload(["dopplerkit.batch", "dopplerkit.measure", "dopplerkit.io"])
-    ex = ProcessPoolExecutor(max_workers=n, mp_context=ctx)
     failed = []
     try:
         futs = {ex.submit(process_chunk, p, f, cfgd): (p, f) for p, f in chunks}

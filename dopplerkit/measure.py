@@ -751,10 +751,11 @@ def _continuum_candidates(setup, xw, cw):
             k_pl = float(np.polyfit(np.log(xw[pos] / np.median(xw)), np.log(cw[pos]), 1)[0])
         if not np.isfinite(k_pl) or not np.all(cw > 0):
             options = [o for o in options if o[0] != "powerlaw"] or [("polynomial", 1)]
-    return options, k_pl, {o: _cont_basis(o, xw, k_pl) for o in options}
+    seg = _segments(xw)
+    return options, k_pl, {o: _cont_basis(o, xw, k_pl, seg) for o in options}
 
 
-def _cont_basis(option, x, k_pl):
+def _cont_basis(option, x, k_pl, seg=None):
     """Continuum design matrix, one local continuum per contiguous window segment.
 
     ``("polynomial", d)``: a polynomial of degree d in each segment's own scaled coordinate;
@@ -762,17 +763,18 @@ def _cont_basis(option, x, k_pl):
     windows (the two jets far apart) never share one smooth curve across the gap between them.
     """
     kind, d = option
-    seg = _segments(x)
-    shape = (x / np.median(x)) ** k_pl if kind == "powerlaw" else np.ones_like(x)
-    cols = []
-    for sid in range(int(seg.max()) + 1):
+    seg = _segments(x) if seg is None else seg
+    nseg = int(seg.max()) + 1
+    shape = (x / x[x.size // 2]) ** k_pl if kind == "powerlaw" else 1.0
+    t = np.empty_like(x)
+    for sid in range(nseg):
         m = seg == sid
         xm = x[m]
-        t = np.zeros_like(x)
-        t[m] = (xm - xm.mean()) / (np.ptp(xm) / 2 or 1.0)
-        for p in range(d + 1):
-            cols.append(np.where(m, shape * t**p, 0.0))
-    return np.column_stack(cols)
+        t[m] = (xm - 0.5 * (xm[0] + xm[-1])) / (0.5 * abs(xm[-1] - xm[0]) or 1.0)
+    B = np.zeros((x.size, nseg * (d + 1)))
+    powers = t[:, None] ** np.arange(d + 1)[None, :] * (shape[:, None] if kind == "powerlaw" else 1.0)
+    B[np.arange(x.size)[:, None], seg[:, None] * (d + 1) + np.arange(d + 1)[None, :]] = powers
+    return B
 
 
 def _continuum_name(option) -> str:
@@ -799,10 +801,15 @@ def _choose_continuum(setup, x, y, sig, bases, comps):
     """The continuum option with the lowest BIC, line shapes held at ``comps`` (linear least squares)."""
     L = _profile_columns(setup, x, comps) * (1.0 if setup.kind == "emission" else -1.0)
     best, best_bic = None, np.inf
+    w = 1.0 / sig
     for opt, B in bases.items():
-        A = np.column_stack([B, L]) / sig[:, None]
-        coef, *_ = np.linalg.lstsq(A, y / sig, rcond=None)
-        r = y / sig - A @ coef
+        A = np.column_stack([B, L]) * w[:, None]
+        b = y * w
+        try:
+            coef = np.linalg.solve(A.T @ A, A.T @ b)
+        except np.linalg.LinAlgError:
+            coef = np.linalg.lstsq(A, b, rcond=None)[0]
+        r = b - A @ coef
         bic = float(r @ r) + B.shape[1] * np.log(x.size)  # Schwarz 1978, Ann. Stat. 6, 461
         if bic < best_bic:
             best, best_bic = opt, bic
