@@ -33,15 +33,21 @@ def plot_population(table, *, path=None, fig=None, truth=None):
     from matplotlib.figure import Figure
 
     fig = fig or Figure(figsize=(9, 4.2), layout="constrained")
-    ok = np.asarray(table["status"]) == "ok"
-    b = np.asarray(table["beta"], float)[ok]
-    be = np.asarray(table["beta_err"], float)[ok]
-    th = np.asarray(table["viewing_angle"], float)[ok]
-    te = np.asarray(table["viewing_angle_err"], float)[ok]
+    status = np.asarray(table["status"])
+    ok = status == "ok"
+    sus = status == "suspect"
+    n_err = int(np.sum(status == "error"))
+
+    def col(name, mask):
+        return np.asarray(table[name], float)[mask] if name in table.colnames else np.full(int(mask.sum()), np.nan)
+
+    b, be, th, te = (col(n, ok) for n in ("beta", "beta_err", "viewing_angle", "viewing_angle_err"))
     ax, axb, axt = fig.subplots(1, 3, width_ratios=[2.2, 1, 1])
     ax.errorbar(
-        th, b, xerr=te, yerr=be, fmt="o", ms=3, color=PALETTE["approaching"], ecolor="0.7", elinewidth=0.8, label=f"fitted ({ok.sum()})"
+        th, b, xerr=te, yerr=be, fmt="o", ms=3, color=PALETTE["approaching"], ecolor="0.7", elinewidth=0.8, label=f"ok ({ok.sum()})"
     )
+    if sus.any():
+        ax.plot(col("viewing_angle", sus), col("beta", sus), "x", ms=4, color="0.45", label=f"suspect ({sus.sum()})")
     if truth is not None:
         ax.plot(
             np.asarray(truth["viewing_angle"], float),
@@ -53,14 +59,16 @@ def plot_population(table, *, path=None, fig=None, truth=None):
             label="true (demo)",
         )
     ax.set_xlabel("viewing angle (deg, 0 = towards us)")
-    ax.set_ylabel(r"$\beta = v/c$")
-    ax.set_xlim(0, 90 if np.nanmax(th, initial=0) <= 90 else 180)
-    ax.legend(frameon=False, fontsize=8)
-    ax.set_title(f"{ok.sum()} fitted, {(~ok).sum()} failed", fontsize=9)
+    ax.set_ylabel(r"speed $\beta = v/c$")
+    ax.set_xlim(0, 90 if np.nanmax(np.concatenate([th, col("viewing_angle", sus)]), initial=0) <= 90 else 180)
+    ax.legend(frameon=False, fontsize=8, loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=3, borderaxespad=0.2)
+    fig.suptitle(f"{ok.sum()} ok, {sus.sum()} suspect (not in the histograms), {n_err} failed", fontsize=9)
     axb.hist(b[np.isfinite(b)], bins=20, color=PALETTE["band"])
-    axb.set_xlabel(r"$\beta$")
+    axb.set_xlabel(r"speed $\beta$")
+    axb.set_ylabel("number of ok sources")
     axt.hist(th[np.isfinite(th)], bins=20, color=PALETTE["band"])
     axt.set_xlabel("viewing angle (deg)")
+    axt.set_ylabel("number of ok sources")
     if path is not None:
         fig.savefig(path, dpi=110)
     return fig
