@@ -6,6 +6,11 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.nddata import StdDevUncertainty
+from hypothesis import settings
+
+# property tests check values, not speed: no per-example time limit on shared, noisy machines
+settings.register_profile("dopplerkit", deadline=None)
+settings.load_profile("dopplerkit")
 
 
 @pytest.fixture
