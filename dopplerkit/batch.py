@@ -312,14 +312,17 @@ def find_spectra(directory: str | Path, pattern: str | None = None) -> list[Path
     for p in sorted(d.rglob("*")):
         if not p.is_file() or p.name.startswith("."):
             continue
-        rel = p.relative_to(d).as_posix()
-        if pattern is not None:
-            if not (fnmatch.fnmatch(rel, pattern) or fnmatch.fnmatch(p.name, pattern)):
-                continue
-        elif not p.name.lower().endswith(SPECTRUM_EXTENSIONS):
-            continue
-        out.append(p)
+        if _is_spectrum_name(p.relative_to(d).as_posix(), pattern):
+            out.append(p)
     return out
+
+
+def _is_spectrum_name(rel: str, pattern: str | None) -> bool:
+    """Would the file search take this path (relative to SPECTRA_DIR) for a spectrum?"""
+    name = rel.rsplit("/", 1)[-1]
+    if pattern is not None:
+        return fnmatch.fnmatch(rel, pattern) or fnmatch.fnmatch(name, pattern)
+    return name.lower().endswith(SPECTRUM_EXTENSIONS)
 
 
 def _formats(paths: list[Path]) -> list[str | None]:
@@ -627,13 +630,7 @@ def _check_output(output: Path, spectra_dir: Path, paths: list[Path], pattern: s
         raise ConfigError(f"--output {str(output)!r} is one of the input spectra; it would be replaced by the results table")
     root = spectra_dir.resolve()
     if target.is_relative_to(root):
-        rel = target.relative_to(root).as_posix()
-        picked = (
-            (fnmatch.fnmatch(rel, pattern) or fnmatch.fnmatch(target.name, pattern))
-            if pattern is not None
-            else target.name.lower().endswith(SPECTRUM_EXTENSIONS)
-        )
-        if picked:
+        if _is_spectrum_name(target.relative_to(root).as_posix(), pattern):
             raise ConfigError(
                 f"--output {str(output)!r} lies inside SPECTRA_DIR and matches the spectra "
                 f"({'--pattern ' + repr(pattern) if pattern else 'by its extension'}): the next run would read the results as a spectrum; "
@@ -818,7 +815,7 @@ def run_batch(
         raise ConfigError(f"SPECTRA_DIR {str(d)!r} is not a directory")
     cfg = config if isinstance(config, BatchConfig) else load_config(config)
     output = Path(output)
-    from .io import TABLE_FORMATS, write_table
+    from .io import TABLE_FORMATS
 
     if output.suffix.lower() not in TABLE_FORMATS:
         raise ConfigError(f"--output extension must be one of {sorted(TABLE_FORMATS)}, got {output.suffix!r}")
@@ -845,10 +842,12 @@ def run_batch(
         if not quiet:
             print(f"dopplerkit batch: created the output directory {output.parent}", file=out)
     with _OutputLock(output, out):
-        return _run_locked(d, cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out, write_table)
+        return _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out)
 
 
-def _run_locked(d, cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out, write_table):
+def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out):
+    from .io import write_table
+
     h = cfg.hash
     previous = _read_previous(output, h) if resume else {}
     journal = _journal_path(output)
