@@ -634,26 +634,20 @@ class LineFitter:
             "npix": int(xw.size),
         }
         rows = self._rows(p, err, at, np.median(np.abs(np.diff(x))))
-        info["delta_chi2"] = self._detection(rows, p, err, xw, yw, sw, B, chi2, lo, hi, x)
+        info["delta_chi2"] = self._detection(rows, p, xw, yw, sw, B, chi2, lo, hi, x)
         _check_identification(s, rows, x, y, sigma)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
 
-    def _detection(self, rows, p, err, xw, yw, sw, B, chi2, lo, hi, x):
+    def _detection(self, rows, p, xw, yw, sw, B, chi2, lo, hi, x):
         """Refit without the weakest component of each group; flag it ``not_detected`` unless the data need it."""
         s = self.setup
         out = []
         first = 0
         for gi, grp in enumerate(s.groups):
             per = 2 + len(grp)
-            sig = []
-            for k in range(s.components):
-                j = first + k * per
-                a, e = p[j + 2 : j + 2 + len(grp)], err[j + 2 : j + 2 + len(grp)]
-                ok = np.all(np.isfinite(e)) and np.any(e > 0)
-                sig.append(float(np.sum(a) / np.sqrt(np.sum(e**2))) if ok else 0.0)
-            kmin = int(np.argmin(sig))
+            kmin = _weakest(rows, gi, s.components)
             j = first + kmin * per
             lo2, hi2, p2 = lo.copy(), hi.copy(), p.copy()
             p2[j + 2 : j + per] = 0.0
@@ -679,6 +673,17 @@ class LineFitter:
                     rows.append(_row(s, lidx, k, p[i], err[i], p[i + 1], err[i + 1], p[j], err[j], bound, dx, gi))
                 i += 2 + len(grp)
         return rows
+
+
+def _weakest(rows, gi, components) -> int:
+    """The component of group gi whose line flux is least significant (flux over its error, summed over its lines)."""
+    sig = []
+    for k in range(components):
+        rs = [r for r in rows if r["group"] == gi and r["k"] == k]
+        e = np.array([r["flux_err"] for r in rs])
+        ok = np.all(np.isfinite(e)) and np.any(e > 0)
+        sig.append(float(sum(abs(r["flux"]) for r in rs) / np.sqrt(np.sum(e**2))) if ok else 0.0)
+    return int(np.argmin(sig))
 
 
 def _detection_threshold(setup, x, gi, fwhm_kms, n_par, npix) -> float:
@@ -1201,22 +1206,16 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms):
     rows = _lmfit_rows(setup, result, float(np.median(np.abs(np.diff(x)))))
     # the detection test of the weakest component of each line (the only one, for one component)
     info["delta_chi2"] = []
-    for gi, grp in enumerate(setup.groups):
-        sig_k = []
-        for k in range(setup.components):
-            rs = [r for r in rows if r["group"] == gi and r["k"] == k]
-            e = np.array([r["flux_err"] for r in rs])
-            ok = np.all(np.isfinite(e)) and np.any(e > 0)
-            sig_k.append(float(sum(abs(r["flux"]) for r in rs) / np.sqrt(np.sum(e**2))) if ok else 0.0)
-        kmin = int(np.argmin(sig_k))
-        p = result.params
-        fitted = [
-            [(p[f"z_g{g}_{k}"].value, p[f"fwhm_g{g}_{k}"].value, [0.0] * len(gr)) for k in range(setup.components)]
-            for g, gr in enumerate(setup.groups)
+    p = result.params
+    fitted = [  # the fit as starting values: (z, fwhm, areas) per group and component
+        [
+            (p[f"z_g{g}_{k}"].value, p[f"fwhm_g{g}_{k}"].value, [abs(p[f"l{lidx}_{k}_amplitude"].value) for lidx in gr])
+            for k in range(setup.components)
         ]
-        for g, gr in enumerate(setup.groups):
-            for k in range(setup.components):
-                fitted[g][k] = (fitted[g][k][0], fitted[g][k][1], [abs(p[f"l{lidx}_{k}_amplitude"].value) for lidx in gr])
+        for g, gr in enumerate(setup.groups)
+    ]
+    for gi, grp in enumerate(setup.groups):
+        kmin = _weakest(rows, gi, setup.components)
         less = _lmfit_fit(setup, xw, yw, sw, fitted, cw, choice, k_pl, hold=(gi, kmin))
         dchi2 = float(less.chisqr) - info["chi2"]
         info["delta_chi2"].append(dchi2)
