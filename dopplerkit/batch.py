@@ -112,6 +112,7 @@ class BatchConfig:
     window_kms: float = 3000.0
     z_min: float = -0.9
     z_max: float = 3.0
+    beta_max: float = 0.5
 
     def as_dict(self) -> dict:
         return {k: (list(map(dict, v)) if k == "lines" else v) for k, v in self.__dict__.items()}
@@ -287,6 +288,7 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
         window_kms,
         z_min,
         z_max,
+        float(beta_max),
     )
 
 
@@ -491,6 +493,12 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         elif not (np.isfinite(be) and be > 0 and np.isfinite(te) and te > 0):
             flags.add("no_errors")
             notes.append("the speed or angle has no finite, non-zero uncertainty")
+        elif b - 3 * be > cfg.get("beta_max", BETA_MAX_DEFAULT):
+            flags.add("beyond_beta_max")
+            notes.append(
+                f"the pair needs beta = {b:.4f} +- {be:.2g}, above [kinematics] beta_max = {cfg.get('beta_max', BETA_MAX_DEFAULT):g}: "
+                "the wrong line configured, or raise beta_max"
+            )
         row.update({"beta": b, "beta_err": be, "viewing_angle": th, "viewing_angle_err": te})
     row["redchi"] = float(max(redchi)) if redchi else math.nan
     row["p_value"] = float(min(pvals)) if pvals else math.nan

@@ -56,6 +56,7 @@ FLAGS = {
     "not_detected": "the data do not need this component (BIC): it may be absent or part of a blend",
     "blend": "closer to another component than 0.85 FWHM (no dip between them): their centres are not separately determined",
     "id_contradicted": "another line of the same gas is missing where this identification puts it",
+    "id_alternative": "another catalogue line explains the features better: its companions appear where it puts them, this line's do not",
     "unresolved": "narrower than two pixels: its width and centre error are not trustworthy",
     "faint": "detected, but its chi-square drop is under twice the detection threshold: its curvature errors are too small there",
     "edge": "within one FWHM of an end of the spectrum (or of a gap): the line and the continuum cannot be told apart",
@@ -68,12 +69,6 @@ BLEND_SEPARATION_FWHM = 0.85
 #: A detected component whose chi-square drop is under this many times the detection threshold is ``faint``.
 FAINT_FACTOR = 2.0
 
-# Lines of the same gas that must appear with at least this flux ratio (companion/line) where the
-# spectrum covers them, for emission lines. Case-B recombination at 10^4 K, n_e = 100 cm^-3:
-# H-alpha/H-beta = 2.86, H-gamma/H-beta = 0.468, H-delta/H-beta = 0.259 (Osterbrock & Ferland 2006,
-# Astrophysics of Gaseous Nebulae, table 4.2; values from memory); reddening only raises the redder
-# line's share, so only companions redward of the line are required, with 12% allowance for case A
-# and temperature. [O III] 5007/4959 = 2.98 (Storey & Zeippen 2000, MNRAS 312, 813; from memory).
 # Recombination lines that the same gas (one jet) emits together, with generous flux ratios to
 # H-alpha: case B H-beta 0.35, H-gamma 0.16, H-delta 0.09 (Osterbrock & Ferland 2006, table 4.2;
 # from memory); He I 5876 0.10 and He I 6678 0.03 (typical of jet spectra; common practice, no
@@ -82,12 +77,38 @@ FAINT_FACTOR = 2.0
 # a blend.
 _SAME_GAS = {"H-alpha": 1.0, "H-beta": 0.35, "H-gamma": 0.16, "H-delta": 0.09, "He I 5876": 0.10, "He I 6678": 0.03}
 
-_COMPANIONS = {
-    "H-beta": (("H-alpha", 2.5),),
-    "H-gamma": (("H-beta", 1.9), ("H-alpha", 5.4)),
-    "H-delta": (("H-beta", 3.4), ("H-alpha", 9.7)),
-    "[O III] 4959": (("[O III] 5007", 2.6),),
+# What else the same gas shows beside an emission line: line -> ((companion, lo, hi, required), ...)
+# with the flux ratio companion/line expected in [lo, hi]. A *required* companion that the
+# spectrum covers and shows weaker than lo (by 5 sigma) contradicts the identification
+# (``id_contradicted``); any companion seen at 5 sigma with a ratio in [lo, hi] supports it.
+# Sources (all from memory): case-B recombination at 10^4 K, n_e = 100 cm^-3, H-alpha/H-beta = 2.86,
+# H-gamma/H-beta = 0.468, H-delta/H-beta = 0.259 (Osterbrock & Ferland 2006, Astrophysics of Gaseous
+# Nebulae, table 4.2); reddening only raises a redder line's share, so only redder companions are
+# required, 12% below case B (case A, temperature), and the upper bounds allow E(B-V) ~ 2.
+# [O III] 5007/4959 = 2.98 and [N II] 6585/6550 = 2.94 are fixed by atomic physics (Storey & Zeippen
+# 2000, MNRAS 312, 813), +-15% here. He I 6678/5876 = 0.28 in case B (Benjamin, Skillman & Smits
+# 1999, ApJ 514, 307); gas that shows He I recombination shows H-alpha several times stronger
+# (He/H ~ 0.1 by number; common practice, no source). The Mg II and C IV doublets lie between
+# 2:1 (optically thin, the ratio of oscillator strengths) and 1:1 (thick): common practice, no source.
+_EVIDENCE = {
+    "H-alpha": (("H-beta", 0.05, 0.45, False), ("H-gamma", 0.02, 0.22, False)),
+    "H-beta": (("H-alpha", 2.5, 20.0, True), ("H-gamma", 0.2, 0.55, False)),
+    "H-gamma": (("H-beta", 1.9, 8.0, True), ("H-alpha", 5.4, 60.0, True)),
+    "H-delta": (("H-beta", 3.4, 15.0, True), ("H-alpha", 9.7, 100.0, True)),
+    "[O III] 5007": (("[O III] 4959", 0.29, 0.39, True),),
+    "[O III] 4959": (("[O III] 5007", 2.55, 3.45, True),),
+    "[N II] 6585": (("[N II] 6550", 0.29, 0.39, True), ("H-alpha", 0.1, 20.0, False)),
+    "[N II] 6550": (("[N II] 6585", 2.5, 3.4, True), ("H-alpha", 0.3, 60.0, False)),
+    "He I 5876": (("H-alpha", 2.0, 100.0, True), ("He I 6678", 0.1, 0.5, False)),
+    "He I 6678": (("H-alpha", 5.0, 300.0, True), ("He I 5876", 1.0, 6.0, False)),
+    "Mg II 2796": (("Mg II 2803", 0.4, 1.1, True),),
+    "Mg II 2803": (("Mg II 2796", 0.9, 2.5, True),),
+    "C IV 1548": (("C IV 1551", 0.4, 1.1, True),),
+    "C IV 1551": (("C IV 1548", 0.9, 2.5, True),),
 }
+#: A companion measured at this many sigma supports an identification; a required one this far
+#: short of its minimum contradicts it.
+_ID_SIGMA = 5.0
 
 
 def spectrum_sigma(spectrum) -> np.ndarray | None:
@@ -137,7 +158,10 @@ class FitSetup:
     fwhm_range: tuple = (30.0, 20000.0)
     min_separation_kms: float = 600.0
     labels: list = field(default_factory=list)
+    #: per line: the lines the same gas shows with it, (name, rest, lo, hi, required) (see _EVIDENCE)
     companions: list = field(default_factory=list)
+    #: catalogue lines that could explain the features instead: (name, rest, companions)
+    alternatives: list = field(default_factory=list)
     same_gas: list = field(default_factory=list)
     #: "air" when the spectral axis is in air: the fit then runs on the axis converted to vacuum
     #: (a Doppler shift scales vacuum wavelengths) and centres are reported back in air.
@@ -160,6 +184,13 @@ class FitSetup:
     def __post_init__(self):
         if not self.labels:
             self.labels = ["approaching", "receding"] if self.components == 2 else [f"c{k + 1}" for k in range(self.components)]
+
+
+def _evidence(name, unit, medium) -> list:
+    """The companions of catalogue line ``name`` (see ``_EVIDENCE``) with rest values on this axis."""
+    from .lines import rest_value
+
+    return [(c, float(rest_value(c, unit, medium=medium).value), lo, hi, req) for c, lo, hi, req in _EVIDENCE.get(name, ())]
 
 
 def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, continuum_degree, z_range):
@@ -197,13 +228,16 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
         else:
             q = rest_value(ln, unit, medium=medium)
             names.append(get_line(ln).name)
-            for cname, ratio in _COMPANIONS.get(names[-1], ()):
-                comp.append((cname, float(rest_value(cname, unit, medium=medium).value), ratio))
+            if unit.is_equivalent(u.m):
+                comp = _evidence(names[-1], unit, medium)
         if not (np.isfinite(q.value) and q.value > 0):
             raise ValueError(f"rest value of line {names[-1]!r} must be positive and finite, got {q!r}")
         rest.append(q.value)
         companions.append(comp)
     groups = [list(range(len(names)))] if tie else [[i] for i in range(len(names))]
+    alternatives = []
+    if kind == "emission" and unit.is_equivalent(u.m):
+        alternatives = [(n, float(rest_value(n, unit, medium=medium).value), _evidence(n, unit, medium)) for n in _EVIDENCE]
     same_gas = []
     if any(n in _SAME_GAS for n in names):
         same_gas = [(n, float(rest_value(n, unit, medium=medium).value), ratio) for n, ratio in _SAME_GAS.items()]
@@ -219,6 +253,7 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
         unit.is_equivalent(u.m),
         z_range,
         companions=companions,
+        alternatives=alternatives,
         same_gas=same_gas,
         axis_medium=axis_medium,
     )
@@ -828,46 +863,165 @@ def _chi2_sf(chi2: float, dof: int) -> float:
     return float(gammaincc(0.5 * dof, 0.5 * chi2)) if np.isfinite(chi2) else float("nan")
 
 
-def _check_identification(setup, rows, x, y, sig):
-    """Flag ``id_contradicted`` where a companion line of the same gas is missing at the fitted z.
+def _flux_at(x, y, sig, mu, sg, others):
+    """Flux of a Gaussian of width ``sg`` fixed at ``mu``, with its error; or None, or the fitted component there.
 
-    For each emission component, every companion in ``setup.companions`` that the spectrum covers
-    is measured at the predicted centre with the component's velocity width (a linear fit of a
-    fixed Gaussian and a local straight continuum). If its flux falls short of the minimum ratio
-    times the component's flux by more than 5 sigma, the identification is contradicted.
+    A linear fit over +-5 sigma: a straight local continuum, this Gaussian, and each fitted
+    component (``others``, see :func:`_others`) that reaches the window, all with free
+    amplitudes. None where the spectrum does not cover the window; the fitted component itself
+    (a dict) where one lies within one FWHM of ``mu`` (the two cannot be told apart there).
+    """
+    half = 5 * sg
+    if not (np.isfinite(mu) and np.isfinite(sg) and sg > 0):
+        return None
+    for o in others:
+        if abs(o["mu"] - mu) < _FWHM_GAUSS * max(o["sg"], sg):
+            return o
+    if not x[0] + half < mu < x[-1] - half:
+        return None
+    m = np.abs(x - mu) < half
+    if m.sum() < 8:
+        return None
+    xx, yy, ss = x[m], y[m], sig[m]
+
+    def gauss(c, w):
+        return np.exp(-0.5 * ((xx - c) / w) ** 2) / (w * np.sqrt(2 * np.pi))
+
+    cols = [np.ones_like(xx), (xx - mu) / half, gauss(mu, sg)]
+    cols += [gauss(o["mu"], o["sg"]) for o in others if abs(o["mu"] - mu) < half + 3 * o["sg"]]
+    A = np.column_stack(cols) / ss[:, None]
+    try:
+        cov = np.linalg.inv(A.T @ A)
+    except np.linalg.LinAlgError:
+        return None
+    coef = cov @ (A.T @ (yy / ss))
+    return float(coef[2]), float(np.sqrt(max(cov[2, 2], 0.0)))
+
+
+def _position(setup, rest, z):
+    return rest * (1 + z) if setup.wavelike else rest / (1 + z)
+
+
+def _companion_evidence(setup, companions, r, z, x, y, sig, others):
+    """Test one identification of component ``r`` at redshift ``z``: (contradiction or None, [support]).
+
+    A companion predicted on top of another fitted component supports the identification when
+    that component sits where predicted (within 5 sigma of the centres or 0.1 FWHM) with a
+    plausible flux ratio (the two are one gas seen in two lines); otherwise it says nothing.
+    """
+    against, support = None, []
+    flux, flux_err = r["flux"], r["flux_err"]
+    for cname, crest, lo, hi, required in companions:
+        mu = _position(setup, crest, z)
+        fw = abs(mu) * r["fwhm"] / C_KMS
+        got = _flux_at(x, y, sig, mu, fw / _FWHM_GAUSS, others)
+        if got is None:
+            continue
+        if isinstance(got, dict):
+            if got["row"] is r:
+                continue
+            tol = max(5 * np.hypot(got["row"]["centre_err"], crest * r["z_err"]), 0.1 * fw)
+            f, fe = got["row"]["flux"], got["row"]["flux_err"]
+            if abs(got["mu"] - mu) < tol and lo * flux <= f <= hi * flux and f > _ID_SIGMA * fe:
+                support.append((cname, mu, f / fe))
+            continue
+        f, fe = got
+        tol = _ID_SIGMA * np.hypot(fe, lo * flux_err)
+        if required and lo * flux - f > tol and against is None:
+            against = (cname, mu, lo * flux, f, fe)
+        elif f > _ID_SIGMA * fe and lo * flux - tol <= f <= hi * flux + _ID_SIGMA * np.hypot(fe, hi * flux_err):
+            support.append((cname, mu, f / fe))
+    return against, support
+
+
+def _others(rows):
+    """The fitted components as the companion tests see them: centre and Gaussian sigma on the fit axis."""
+    out = []
+    for r in rows:
+        mu = r["centre"]
+        sg = abs(mu) * r["fwhm"] / (C_KMS * _FWHM_GAUSS)
+        if np.isfinite(mu) and np.isfinite(sg) and sg > 0:
+            out.append({"mu": mu, "sg": sg, "row": r})
+    return out
+
+
+def _usable(r) -> bool:
+    return bool(
+        np.isfinite(r["z"])
+        and np.isfinite(r["z_err"])
+        and np.isfinite(r["fwhm"])
+        and np.isfinite(r["flux"])
+        and r["flux"] > 0
+        and np.isfinite(r["flux_err"])
+        and np.isfinite(r["centre_err"])
+    )
+
+
+def _check_identification(setup, rows, x, y, sig):
+    """Test each emission line's identification against the other lines of the same gas.
+
+    ``id_contradicted``: a required companion (``_EVIDENCE``: a redder Balmer line, the other
+    line of a fixed-ratio doublet, H-alpha beside He I) that the spectrum covers is weaker than
+    its minimum by more than 5 sigma at the fitted z. ``id_alternative``: nothing supports the
+    configured line at a component's z (no companion seen), while another catalogue line, at a z
+    inside the allowed range, is supported by a companion seen at 5 sigma with a plausible ratio
+    (or by another fitted component exactly where that companion belongs) and contradicted by
+    none. Companions are measured with the component's velocity width, beside the fitted
+    components.
     """
     if setup.kind != "emission":
         return
+    others = _others(rows)
     for r in rows:
         comps = setup.companions[r["lidx"]] if setup.companions else ()
-        if not comps or not (np.isfinite(r["flux"]) and r["flux"] > 0 and np.isfinite(r["flux_err"])):
+        if not comps or not _usable(r):
             continue
-        for cname, crest, ratio in comps:
-            mu = crest * (1 + r["z"]) if setup.wavelike else crest / (1 + r["z"])
-            sg = abs(mu) * r["fwhm"] / (C_KMS * _FWHM_GAUSS)
-            half = 5 * sg
-            if not (x[0] + half < mu < x[-1] - half):
+        against, _ = _companion_evidence(setup, comps, r, r["z"], x, y, sig, others)
+        if against is not None:
+            cname, mu, need, f, fe = against
+            r["flags"].append("id_contradicted")
+            r["notes"].append(
+                f"{r['line']} {r['component']} at z = {r['z']:.5f} puts {cname} at {mu:.6g} with flux >= {need:.3g}; "
+                f"measured {f:.3g} +- {fe:.3g}: the line is probably not {r['line']}"
+            )
+    _check_alternatives(setup, rows, x, y, sig, others)
+
+
+def _check_alternatives(setup, rows, x, y, sig, others):
+    """Flag ``id_alternative`` (every component of the line) where another catalogue line explains a component better."""
+    if not setup.alternatives:
+        return
+    zlo, zhi = setup.z_range
+    for gi, grp in enumerate(setup.groups):
+        mine = [r for r in rows if r["group"] == gi]
+        if len(grp) != 1 or any("id_contradicted" in r["flags"] for r in mine):
+            continue
+        li = grp[0]
+        comps = setup.companions[li] if setup.companions else ()
+        for r in mine:
+            if not _usable(r) or _companion_evidence(setup, comps, r, r["z"], x, y, sig, others)[1]:
                 continue
-            m = np.abs(x - mu) < half
-            if m.sum() < 8:
+            best = None
+            for name, rest, ev in setup.alternatives:
+                if name == setup.names[li] or not ev:
+                    continue
+                z = (1 + r["z"]) * setup.rest[li] / rest - 1 if setup.wavelike else (1 + r["z"]) * rest / setup.rest[li] - 1
+                if not zlo <= z <= zhi:
+                    continue
+                against, found = _companion_evidence(setup, ev, r, z, x, y, sig, others)
+                if against is None and found and (best is None or max(q[2] for q in found) > best[2]):
+                    best = (name, z, max(q[2] for q in found), found)
+            if best is None:
                 continue
-            xx, yy, ss = x[m], y[m], sig[m]
-            g = np.exp(-0.5 * ((xx - mu) / sg) ** 2) / (sg * np.sqrt(2 * np.pi))
-            A = np.column_stack([np.ones_like(xx), (xx - mu) / half, g]) / ss[:, None]
-            try:
-                cov = np.linalg.inv(A.T @ A)
-            except np.linalg.LinAlgError:
-                continue
-            coef = cov @ (A.T @ (yy / ss))
-            f, fe = float(coef[2]), float(np.sqrt(cov[2, 2]))
-            need = ratio * r["flux"]
-            shortfall = need - f
-            if shortfall > 5 * np.hypot(fe, ratio * r["flux_err"]):
-                r["flags"].append("id_contradicted")
-                r["notes"].append(
-                    f"{r['line']} {r['component']} at z = {r['z']:.5f} puts {cname} at {mu:.6g} with flux >= {need:.3g}; "
-                    f"measured {f:.3g} +- {fe:.3g}: the line is probably not {r['line']}"
-                )
+            name, z_alt, _, found = best
+            seen = ", ".join(f"{c} at {mu:.6g} ({q:.0f} sigma)" for c, mu, q in found)
+            for o in mine:
+                if "id_alternative" not in o["flags"]:
+                    o["flags"].append("id_alternative")
+            r["notes"].append(
+                f"the {r['component']} feature fits {name} at z = {z_alt:.5f} better than {setup.names[li]} at z = {r['z']:.5f}: "
+                f"{seen} where {name} puts it, no companion of {setup.names[li]} seen"
+            )
 
 
 def _assess(setup, rows, info):
@@ -1315,7 +1469,7 @@ def _warn_flags(t):
             UnresolvedLineWarning,
             stacklevel=3,
         )
-    if flags & {"not_detected", "faint", "blend", "id_contradicted", "edge"}:
+    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "edge"}:
         msgs = [m for m in t["message"] if m]
         warnings.warn(
             f"component(s) suspect: {'; '.join(msgs)}",

@@ -559,3 +559,29 @@ def test_suspect_rows_are_kept_filled_and_give_exit_code_1(tmp_path, capsys):
     t = Table.read(out)
     assert t["status"][0] == "suspect" and "not detected" in t["message"][0]
     assert np.isfinite(t["h_alpha_approaching_z"][0]) and t["continuum"][0]
+
+
+def test_pair_faster_than_beta_max_is_suspect(tmp_path):
+    # an H-alpha pair (beta 0.2, 50 deg) fitted as He II 4686: both redshifts scale by 6564.6/4685.7, so the
+    # transverse term (1 + z_a)(1 + z_r) = Gamma^2 (1 - beta^2 cos^2 theta) (Rybicki & Lightman 1979,
+    # Radiative Processes in Astrophysics, sec. 4.8) grows by 1.96 and the pair needs beta ~ 0.7
+    from dopplerkit.batch import process_chunk
+
+    grid = np.arange(5000.0, 8800.0, 2.5) * u.AA
+    za, zr = dk.redshift(0.2, 50), dk.redshift(0.2, 130)
+    comps = [LineComponent("H-alpha", z=z, fwhm=700 * u.km / u.s, strength=2.0) for z in (za, zr)]
+    path = tmp_path / "pair.fits"
+    write_spectrum(synthesize_spectrum(grid, comps, snr=30, seed=3), path)
+    cfg = {
+        "line": [{"name": "He II 4686", "components": 2}],
+        "kinematics": {"model": "jet-pair", "beta_max": 0.5},
+        "spectra": {"medium": "vacuum"},
+    }
+    cfg["fit"] = {"z_min": -0.5, "z_max": 1.0}  # wide enough for the wrong reading
+    row = process_chunk([str(path)], [None], parse_config(cfg).as_dict())[0]
+    assert row["status"] == "suspect" and "beyond_beta_max" in row["flags"], row["message"]
+    assert "raise beta_max" in row["message"]
+    cfg["line"] = [{"name": "H-alpha", "components": 2}]
+    row = process_chunk([str(path)], [None], parse_config(cfg).as_dict())[0]
+    assert row["status"] == "ok", row["message"]
+    assert abs(row["beta"] - 0.2) < 5 * row["beta_err"]
