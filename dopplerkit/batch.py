@@ -81,6 +81,7 @@ _ALLOWED = {
     "kinematics": {"model", "beta_max"},
     "spectra": {"medium", "spectral_unit", "flux_unit"},
     "fit": {"tie", "kind", "continuum", "continuum_degree", "window", "window_kms", "z_min", "z_max"},
+    "host": {"lines", "z"},
 }
 #: Default largest speed: the line search covers the redshifts it allows (override with beta_max or z_min/z_max).
 BETA_MAX_DEFAULT = 0.5
@@ -113,9 +114,11 @@ class BatchConfig:
     z_min: float = -0.9
     z_max: float = 3.0
     beta_max: float = 0.5
+    host_lines: object = "auto"
+    host_z: float = 0.0
 
     def as_dict(self) -> dict:
-        return {k: (list(map(dict, v)) if k == "lines" else v) for k, v in self.__dict__.items()}
+        return {k: (list(map(dict, v)) if k == "lines" else list(v) if isinstance(v, tuple) else v) for k, v in self.__dict__.items()}
 
     @property
     def hash(self) -> str:
@@ -266,6 +269,25 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
         _err(f"{where}: [fit] tie = true needs the same number of components for every line")
     window = float(_number(where, "[fit]", "window", fit.get("window", 6.0), lo=0, lo_open=True))
     window_kms = float(_number(where, "[fit]", "window_kms", fit.get("window_kms", 3000.0), lo=0, lo_open=True))
+    host = data.get("host", {})
+    if not isinstance(host, dict):
+        _err(f"{where}: [host] must be a table with keys lines and z, got {host!r}")
+    bad = set(host) - _ALLOWED["host"]
+    if bad:
+        _unknown(where, "[host]", bad, _ALLOWED["host"])
+    host_z = float(_number(where, "[host]", "z", host.get("z", 0.0), lo=-1, lo_open=True))
+    host_lines = host.get("lines", "auto")
+    if isinstance(host_lines, str) and host_lines in ("auto", "none"):
+        pass
+    elif isinstance(host_lines, list) and host_lines and all(isinstance(h, str) for h in host_lines):
+        for h in host_lines:
+            try:
+                get_line(h)
+            except KeyError as exc:
+                _err(f"{where}: [host] lines: {h!r}: {exc.args[0]}")
+        host_lines = tuple(get_line(h).name for h in host_lines)
+    else:
+        _err(f'{where}: [host] lines must be "auto", "none" or a list of catalogue line names, got {host_lines!r}')
     # default search range: the redshifts a speed up to beta_max can give (head-on to straight away)
     from .kinematics import redshift
 
@@ -289,6 +311,8 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
         z_min,
         z_max,
         float(beta_max),
+        host_lines,
+        host_z,
     )
 
 
@@ -374,6 +398,11 @@ def jet_pair_closed_form(za, zr, ea, er):
     return b, beta_err, th, th_err
 
 
+def _host_arg(cfg):
+    h = cfg.get("host_lines", "auto")
+    return None if h == "none" else h if isinstance(h, str) else list(h)
+
+
 def _fitters(cfg, unit, medium, cache):
     from .measure import LineFitter
 
@@ -402,6 +431,8 @@ def _fitters(cfg, unit, medium, cache):
                         z_range=z_range,
                         window=cfg["window"],
                         window_kms=cfg["window_kms"],
+                        host=_host_arg(cfg),
+                        host_z=cfg.get("host_z", 0.0),
                     ),
                 )
             ]
@@ -420,6 +451,8 @@ def _fitters(cfg, unit, medium, cache):
                         z_range=z_range,
                         window=cfg["window"],
                         window_kms=cfg["window_kms"],
+                        host=_host_arg(cfg),
+                        host_z=cfg.get("host_z", 0.0),
                     ),
                 )
                 for ln, o in zip(lines, objs, strict=True)
@@ -455,9 +488,11 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     row: dict = {"axis_unit": arr.axis_unit}
     flags = set()
     notes: list = []
-    redchi, pvals, conts = [], [], []
+    redchi, pvals, conts, hosts = [], [], [], []
     for _lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
         rows, info = fitter.measure(arr.axis, arr.flux, arr.sigma)
+        if info.get("host"):
+            hosts.append(info["host"])
         redchi.append(info["redchi"])
         pvals.append(info["p_value"])
         conts.append(info["continuum"])
@@ -503,6 +538,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     row["redchi"] = float(max(redchi)) if redchi else math.nan
     row["p_value"] = float(min(pvals)) if pvals else math.nan
     row["continuum"] = "; ".join(conts)
+    row["host"] = "; ".join(hosts)
     row["flags"] = ",".join(sorted(flags))
     row["status"] = "suspect" if flags else "ok"
     row["message"] = "; ".join(notes) if notes else ("; ".join(sorted(flags)) if flags else "")
@@ -726,6 +762,7 @@ def _to_table(rows: list[dict]):
         "redchi",
         "p_value",
         "continuum",
+        "host",
         "flags",
         "axis_unit",
         "seconds",
@@ -743,7 +780,7 @@ def _to_table(rows: list[dict]):
     data = {}
     for k in cols:
         vals = [r.get(k) for r in rows]
-        if k in ("file", "status", "message", "flags", "continuum", "axis_unit", "config_hash", "dopplerkit_version"):
+        if k in ("file", "status", "message", "flags", "continuum", "host", "axis_unit", "config_hash", "dopplerkit_version"):
             data[k] = [("" if v is None else str(v)) for v in vals]
         elif k in ("file_size", "file_mtime_ns"):
             data[k] = np.array([-1 if v is None else int(v) for v in vals], dtype=np.int64)

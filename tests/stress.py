@@ -127,17 +127,27 @@ CONFIG = {
 }
 
 
-def run(truth, config=None, wrong_line="H-beta"):
-    """Fit every file with the batch worker (one process); the wrong-line cases get ``wrong_line`` configured."""
+#: lines a user might configure by mistake on these H-alpha spectra: a stronger companion missing
+#: (H-beta), a fixed-ratio partner missing ([O III] 5007), H-alpha missing beside He I, and one with
+#: no companion at all (He II 4686: only the kinematics and the other identifications can tell)
+WRONG_LINES = ("H-beta", "[O III] 5007", "He I 5876", "He II 4686")
+
+
+def run(truth, config=None, wrong_lines=WRONG_LINES):
+    """Fit every file with the batch worker (one process); the wrong-line cases get one of ``wrong_lines`` in turn."""
     from dopplerkit.batch import parse_config, process_chunk
 
-    cfg = parse_config(config or CONFIG).as_dict()
-    wrong = dict(config or CONFIG)
-    wrong = {**wrong, "line": [{"name": wrong_line, "components": 2}]}
-    cfg_wrong = parse_config(wrong).as_dict()
+    base = dict(config or CONFIG)
+    cfg = parse_config(base).as_dict()
+    wrong = [parse_config({**base, "line": [{"name": w, "components": 2}]}).as_dict() for w in wrong_lines]
     rows = []
+    n_wrong = 0
     for path, c in truth.items():
-        rows += process_chunk([path], [None], cfg_wrong if c["kind"] == "wrongline" else cfg)
+        if c["kind"] == "wrongline":
+            rows += process_chunk([path], [None], wrong[n_wrong % len(wrong)])
+            n_wrong += 1
+        else:
+            rows += process_chunk([path], [None], cfg)
     return rows
 
 

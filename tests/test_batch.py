@@ -585,3 +585,36 @@ def test_pair_faster_than_beta_max_is_suspect(tmp_path):
     row = process_chunk([str(path)], [None], parse_config(cfg).as_dict())[0]
     assert row["status"] == "ok", row["message"]
     assert abs(row["beta"] - 0.2) < 5 * row["beta_err"]
+
+
+def test_host_table_in_the_config(tmp_path):
+    from dopplerkit.batch import process_chunk
+
+    base = {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair"}, "spectra": {"medium": "vacuum"}}
+    assert parse_config(base).host_lines == "auto" and parse_config(base).host_z == 0.0
+    cfg = parse_config({**base, "host": {"lines": ["H-alpha", "[N II] 6584"], "z": 0.001}})
+    assert cfg.host_lines == ("H-alpha", "[N II] 6585") and cfg.host_z == 0.001
+    for bad, match in (
+        ({"lines": "yes"}, "lines must be"),
+        ({"lines": ["[N II] 9999"]}, "no line named"),
+        ({"z": True}, "z must be a number"),
+        ({"z": -1.0}, "z must be >"),
+        ({"redshift": 0.1}, "did you mean 'z'|unknown key"),
+    ):
+        with pytest.raises(ConfigError, match=match):
+            parse_config({**base, "host": bad})
+    # a slow pair under the host's narrow H-alpha and [N II] (vacuum 6549.86, 6585.27 A; NIST ASD, from memory)
+    kms = u.km / u.s
+    za, zr = dk.redshift(0.03, 75), dk.redshift(0.03, 105)
+    comps = [LineComponent("H-alpha", z=z, fwhm=900 * kms, strength=q) for z, q in ((za, 2.0), (zr, 1.5))]
+    comps += [
+        LineComponent(w, z=0.0, fwhm=150 * kms, strength=q) for w, q in (("H-alpha", 1.5), (6585.27 * u.AA, 1.2), (6549.86 * u.AA, 0.4))
+    ]
+    path = tmp_path / "host.fits"
+    write_spectrum(synthesize_spectrum(np.arange(5500.0, 7800.0, 2.0) * u.AA, comps, snr=25, seed=4, resolution=4000), path)
+    row = process_chunk([str(path)], [None], parse_config(base).as_dict())[0]
+    assert row["status"] == "ok", row["message"]
+    assert "[N II] 6585 (S/N" in row["host"]
+    assert abs(row["beta"] - 0.03) < 4 * row["beta_err"]
+    row = process_chunk([str(path)], [None], parse_config({**base, "host": {"lines": "none"}}).as_dict())[0]
+    assert row["status"] == "suspect" and row["host"] == ""
