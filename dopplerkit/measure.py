@@ -383,27 +383,53 @@ def _find_host(setup: FitSetup, x, y, sig):
         return None
     rest, names, mu0 = rest[inside], [n for n, i in zip(names, inside, strict=True) if i], mu0[inside]
     near = np.zeros(x.size, bool)
-    for m in mu0:
-        near |= np.abs(x - m) < abs(m) * (HOST_DV_MAX + 2 * HOST_FWHM_RANGE[1]) / C_KMS
     wide = np.zeros(x.size, bool)
     for m in mu0:
-        wide |= np.abs(x - m) < abs(m) * 4000.0 / C_KMS
+        for mask, kms in ((near, HOST_DV_MAX + 2 * HOST_FWHM_RANGE[1]), (wide, 4000.0)):
+            i0, i1 = np.searchsorted(x, [m - abs(m) * kms / C_KMS, m + abs(m) * kms / C_KMS])
+            mask[i0:i1] = True
     if near.sum() < 8:
         return None
-    hp = (y - _median_continuum(x, y, 1000.0))[wide]
     xs, ss = x[wide], sig[wide]
+    hp = y[wide] - _median_continuum(xs, y[wide], 1000.0)
     sel = near[wide]
-    dv_step = max(float(np.median(np.abs(np.diff(xs)) / np.abs(xs[1:]))) * C_KMS / 2, 5.0)
-    dvs = np.arange(-HOST_DV_MAX, HOST_DV_MAX + 0.5 * dv_step, dv_step)
-    pix_kms = 2 * dv_step
+    pix_kms = max(float(np.median(np.abs(np.diff(xs)) / np.abs(xs[1:]))) * C_KMS, 10.0)
     lo_w = max(HOST_FWHM_RANGE[0], 1.5 * pix_kms)
     if lo_w >= HOST_FWHM_RANGE[1]:
         return None
+    # a quick look first: one middle width, a coarse offset grid
+    mid = float(np.sqrt(lo_w * HOST_FWHM_RANGE[1]))
+    coarse = np.arange(-HOST_DV_MAX, HOST_DV_MAX + 1.0, max(pix_kms, mid / 3))
+    q = _host_grid_fit(xs[sel], hp[sel], ss[sel], rest, z, setup.wavelike, coarse, np.array([mid]))[3]
+    if not np.max(q) >= 0.5 * HOST_SIGMA:
+        return None
+    dvs = np.arange(-HOST_DV_MAX, HOST_DV_MAX + 0.5 * pix_kms, pix_kms / 2)
     fwhms = np.geomspace(lo_w, HOST_FWHM_RANGE[1], 10)
     chi2, dv, fw, snr = _host_grid_fit(xs[sel], hp[sel], ss[sel], rest, z, setup.wavelike, dvs, fwhms)
     if not np.isfinite(chi2) or not np.max(snr) >= HOST_SIGMA:
         return None
     return _Host(names, rest, z, dv, fw, np.asarray(snr, float))
+
+
+def _begin(setup: FitSetup, x, y, sig, window, window_kms):
+    """Starting values, continuum and host lines: (starts, cont, host).
+
+    Host lines are looked for only when one of them falls in a fit window of the started
+    components (elsewhere they cannot matter), and the start is then redone with them.
+    """
+    starts, cont = _starts(setup, x, y, sig)
+    if not setup.host or setup.kind != "emission":
+        return starts, cont, None
+    keep = _window_mask(setup, x, starts, window, window_kms)
+    xk = x[keep]
+    z = setup.host_z
+    mus = [r * (1 + z) if setup.wavelike else r / (1 + z) for _, r in setup.host]
+    if not any(np.any(np.abs(xk - m) < abs(m) * HOST_FWHM_RANGE[1] / C_KMS) for m in mus):
+        return starts, cont, None
+    host = _find_host(setup, x, y, sig)
+    if host is not None:
+        starts, cont = _starts(setup, x, y, sig, host=host)
+    return starts, cont, host
 
 
 def _refine_host(setup, host: _Host, x, r, sig) -> _Host:
@@ -451,13 +477,51 @@ def _host_in_window(setup, host, xw):
     return _Host([host.names[i] for i in keep], host.rest[keep], host.z, host.dv, host.fwhm, snr)
 
 
-def _with_host(setup, plain, host, xw):
-    """Continuum candidates with the host lines' columns appended to every design matrix."""
+def _with_host(setup, plain, host, xw, extra=None):
+    """Continuum candidates with ``extra`` columns and then the host lines' columns appended to every design matrix."""
     options, k_pl, bases = plain
-    if host is None:
+    add = [m for m in (extra, None if host is None else host.columns(xw, setup.wavelike)) if m is not None]
+    if not add:
         return options, k_pl, bases
-    H = host.columns(xw, setup.wavelike)
-    return options, k_pl, {o: np.hstack([B, H]) for o, B in bases.items()}
+    return options, k_pl, {o: np.hstack([B, *add]) for o, B in bases.items()}
+
+
+def _nuisance(setup, comps, xw):
+    """Columns for lines of the same gas from the fitted components that fall in the fit windows.
+
+    ``comps`` is [(group, k, z, fwhm)]. A receding jet's H-beta can land beside the approaching
+    jet's H-alpha: left out, it spoils the fit. Each such line gets a fixed-shape column (at its
+    component's z and width) with a free flux. Returns (matrix or None, names).
+    """
+    if not setup.same_gas or setup.kind != "emission":
+        return None, []
+    configured = setup.rest
+    cols, names = [], []
+    for _gi, k, z, w in comps:
+        for name, rest, _q in setup.same_gas:
+            if np.any(np.abs(configured - rest) <= 1e-6 * rest):
+                continue
+            mu = rest * (1 + z) if setup.wavelike else rest / (1 + z)
+            fw = abs(mu) * w / C_KMS
+            if not (np.isfinite(fw) and fw > 0) or np.count_nonzero(np.abs(xw - mu) < fw) < 3:
+                continue
+            sg = fw / _FWHM_GAUSS
+            cols.append(np.exp(-0.5 * ((xw - mu) / sg) ** 2) / (sg * np.sqrt(2 * np.pi)))
+            names.append(f"{name} ({setup.labels[k]})")
+    if not cols:
+        return None, []
+    return np.column_stack(cols), names
+
+
+def _worth_trying(N, resid, sig, penalty) -> bool:
+    """Would the columns ``N`` lower chi-square of this residual by more than ``penalty`` (linear estimate)?"""
+    A = N / sig[:, None]
+    b = A.T @ (resid / sig)
+    try:
+        gain = float(b @ np.linalg.solve(A.T @ A, b))
+    except np.linalg.LinAlgError:
+        return True
+    return gain > penalty
 
 
 def _host_note(host: _Host, snr) -> str:
@@ -746,8 +810,7 @@ class LineFitter:
             if unit is None:
                 raise ValueError("an air-wavelength set-up needs its axis unit: build the fitter with LineFitter.for_lines")
             x = _to_fit_axis(self.setup, x, unit)
-        host = _find_host(self.setup, x, y, sigma)
-        starts, cont = _starts(self.setup, x, y, sigma, host=host)
+        starts, cont, host = _begin(self.setup, x, y, sigma, self.window, self.window_kms)
         rows, info = self.fit_arrays(x, y, sigma, starts=starts, cont=cont, host=host)
         _rows_to_axis(self.setup, rows, unit)
         for r in rows:
@@ -843,8 +906,7 @@ class LineFitter:
             x, y, sigma = _clean(x, y, sigma)
             order = np.argsort(x)
             x, y, sigma = x[order], y[order], sigma[order]
-            host = _find_host(s, x, y, sigma)
-            starts, cont = _starts(s, x, y, sigma, host=host)
+            starts, cont, host = _begin(s, x, y, sigma, self.window, self.window_kms)
         keep = self.window_mask(x, starts)
         xw, yw, sw = x[keep], y[keep], sigma[keep]
         cw = cont[keep] if cont is not None else _median_continuum(xw, yw)
@@ -893,6 +955,19 @@ class LineFitter:
                 host, p, err, chi2, at, lo, hi = None, p0_, err0, chi20, at0, lo0, hi0
             else:
                 bases, p, err, chi2, at, lo, hi = with_host
+        zs, ws, _, _ = self._unpack(p)
+        N, extra = _nuisance(s, [(gi, k, zs[gi][k], ws[gi][k]) for gi in range(len(s.groups)) for k in range(s.components)], xw)
+        if N is not None and not _worth_trying(N, yw - self._model(p, xw, bases[choice])[0], sw, N.shape[1] * lnn):
+            N, extra = None, []
+        if N is not None:
+            # other lines of the same gas in the windows: kept when the data need them (BIC)
+            save = (bases, p, err, chi2, at, lo, hi)
+            bases = _with_host(s, plain, host, xw, N)[2]
+            trial = full_fit(choice)
+            if chi2 - trial[2] > N.shape[1] * lnn:
+                p, err, chi2, at, lo, hi = trial
+            else:
+                (bases, p, err, chi2, at, lo, hi), extra = save, []
         B = bases[choice]
         dof = max(xw.size - int(np.sum(lo < hi)) - (2 if host is not None else 0), 1)
         info = {
@@ -908,6 +983,7 @@ class LineFitter:
         if host is not None:
             nh = len(host.names)
             info["host"] = _host_note(host, p[-nh:] / err[-nh:])
+        info["also_fitted"] = extra
         _check_identification(s, rows, x, y, sigma, host=host)
         _check_edges(rows, x)
         _assess(s, rows, info)
@@ -1117,23 +1193,22 @@ def _flux_at(x, y, sig, mu, sg, others):
             return o
     if not x[0] + half < mu < x[-1] - half:
         return None
-    m = np.abs(x - mu) < half
-    if m.sum() < 8:
+    i0, i1 = np.searchsorted(x, [mu - half, mu + half])  # x is sorted
+    if i1 - i0 < 8:
         return None
-    xx, yy, ss = x[m], y[m], sig[m]
-
-    def gauss(c, w):
-        return np.exp(-0.5 * ((xx - c) / w) ** 2) / (w * np.sqrt(2 * np.pi))
-
-    cols = [np.ones_like(xx), (xx - mu) / half, gauss(mu, sg)]
-    cols += [gauss(o["mu"], o["sg"]) for o in others if abs(o["mu"] - mu) < half + 3 * o["sg"]]
-    A = np.column_stack(cols) / ss[:, None]
+    xx, w = x[i0:i1], 1.0 / sig[i0:i1]
+    near = [(o["mu"], o["sg"]) for o in others if abs(o["mu"] - mu) < half + 3 * o["sg"]]
+    A = np.empty((xx.size, 3 + len(near)))
+    A[:, 0] = w
+    A[:, 1] = (xx - mu) * (w / half)
+    for j, (c, g) in enumerate([(mu, sg), *near]):
+        A[:, 2 + j] = np.exp(-0.5 * ((xx - c) / g) ** 2) * (w / (g * 2.5066282746310002))
     try:
         cov = np.linalg.inv(A.T @ A)
     except np.linalg.LinAlgError:
         return None
-    coef = cov @ (A.T @ (yy / ss))
-    return float(coef[2]), float(np.sqrt(max(cov[2, 2], 0.0)))
+    coef = cov[2] @ (A.T @ (y[i0:i1] * w))
+    return float(coef), float(np.sqrt(max(cov[2, 2], 0.0)))
 
 
 def _position(setup, rest, z):
@@ -1547,7 +1622,7 @@ def _basis_continuum(x, basis, **coef):
     return basis @ c
 
 
-def _lmfit_fit(setup: FitSetup, x, y, sigma, starts, cont0, option=("polynomial", 1), k_pl=0.0, hold=None, host=None):
+def _lmfit_fit(setup: FitSetup, x, y, sigma, starts, cont0, option=("polynomial", 1), k_pl=0.0, hold=None, host=None, extra=None):
     """One lmfit fit with the continuum ``option`` (and host lines' columns); ``hold`` = (group, component) held at zero area."""
     import lmfit
 
@@ -1555,7 +1630,7 @@ def _lmfit_fit(setup: FitSetup, x, y, sigma, starts, cont0, option=("polynomial"
     cls = getattr(lmfit.models, PROFILES[s.profile][0])
     fwhm_per_sigma = float(PROFILES[s.profile][1])
     sign = 1.0 if s.kind == "emission" else -1.0
-    B = _with_host(s, ([option], k_pl, {option: _cont_basis(option, x, k_pl)}), host, x)[2][option]
+    B = _with_host(s, ([option], k_pl, {option: _cont_basis(option, x, k_pl)}), host, x, extra)[2][option]
     if B.shape[1] > _MAX_CONT:
         raise ValueError(f"too many separate fit windows for the lmfit engine ({B.shape[1]} continuum coefficients); use method='fast'")
     coef = np.linalg.lstsq(B, cont0, rcond=None)[0]
@@ -1637,6 +1712,17 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         snr = [q.value / q.stderr if q.stderr else np.nan for q in pars]
         if not _host_needed(float(plain_fit.chisqr) - float(result.chisqr), nh, xw.size, snr):
             host, result = None, plain_fit
+    p = result.params
+    comps = [(g, k, p[f"z_g{g}_{k}"].value, p[f"fwhm_g{g}_{k}"].value) for g in range(len(setup.groups)) for k in range(setup.components)]
+    N, also = _nuisance(setup, comps, xw)
+    if N is not None and not _worth_trying(N, yw - result.best_fit, sw, N.shape[1] * np.log(xw.size)):
+        N, also = None, []
+    if N is not None:
+        trial = _lmfit_fit(setup, xw, yw, sw, starts, cw, choice, k_pl, host=host, extra=N)
+        if float(result.chisqr) - float(trial.chisqr) > N.shape[1] * np.log(xw.size):
+            result = trial
+        else:
+            N, also = None, []
     dof = max(int(result.nfree) - (2 if host is not None else 0), 1)
     info = {
         "chi2": float(result.chisqr),
@@ -1659,15 +1745,16 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
     ]
     for gi, grp in enumerate(setup.groups):
         kmin = _weakest(rows, gi, setup.components)
-        less = _lmfit_fit(setup, xw, yw, sw, fitted, cw, choice, k_pl, hold=(gi, kmin), host=host)
+        less = _lmfit_fit(setup, xw, yw, sw, fitted, cw, choice, k_pl, hold=(gi, kmin), host=host, extra=N)
         dchi2 = float(less.chisqr) - info["chi2"]
         info["delta_chi2"].append(dchi2)
         need = _detection_threshold(setup, x, gi, result.params[f"fwhm_g{gi}_{kmin}"].value, 2 + len(grp), xw.size)
         _flag_undetected(rows, gi, kmin, dchi2, need)
     if host is not None:
-        nb, nh = bases[choice].shape[1], len(host.names)
+        nb, nh = sum(result.params[f"cont_c{i}"].vary for i in range(_MAX_CONT)), len(host.names)
         pars = [result.params[f"cont_c{i}"] for i in range(nb - nh, nb)]
         info["host"] = _host_note(host, [q.value / q.stderr if q.stderr else np.nan for q in pars])
+    info["also_fitted"] = also
     _check_identification(setup, rows, x, y, sig, host=host)
     _check_edges(rows, x)
     _assess(setup, rows, info)
@@ -1740,6 +1827,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
             "profile": setup.profile,
             "kind": setup.kind,
             "host": info.get("host", ""),
+            "also_fitted": list(info.get("also_fitted", [])),
             "flags": dict(FLAGS),
         }
     )
@@ -1847,7 +1935,10 @@ def measure_lines(
         "auto" (default) looks for the usual neighbours of each configured line
         (:data:`HOST_LINES`: [N II] and [S II] beside H-alpha, [O III] beside H-beta, ...) and
         fits them when the strongest is seen at 5 sigma; a list fits those lines when seen;
-        None never. What was fitted is in ``meta["host"]``.
+        None never. What was fitted is in ``meta["host"]``. Lines of the same gas from the
+        fitted components that fall in the windows (a receding H-beta beside the approaching
+        H-alpha) are fitted too, at their component's z and width, when the data need them
+        (BIC); they are listed in ``meta["also_fitted"]``.
     host_z : float
         Redshift of the host (0 for a Galactic source).
     return_result : bool
@@ -1896,8 +1987,7 @@ def measure_lines(
     fscale = float(np.median(np.abs(y))) or float(np.median(sig)) or 1.0
     x, y, sig = x[order], y[order] / fscale, sig[order] / fscale
     x = _to_fit_axis(setup, x, unit)
-    found = _find_host(setup, x, y, sig)
-    starts, cont0 = _starts(setup, x, y, sig, host=found)
+    starts, cont0, found = _begin(setup, x, y, sig, window, window_kms)
     if method == "fast":
         rows, info = LineFitter(setup, window, window_kms).fit_arrays(x, y, sig, starts=starts, cont=cont0, host=found)
         extra = info

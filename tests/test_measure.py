@@ -301,6 +301,26 @@ def test_host_lines_are_fitted_under_the_jet_lines(method):
     assert np.max(np.abs(pulls)) < 4, np.round(pulls, 1)
 
 
+@pytest.mark.parametrize("method", ["fast", "lmfit"])
+def test_other_lines_of_the_same_gas_in_the_window_are_fitted(method):
+    # beta 0.24 at 53 deg: the receding H-beta (z = +0.178) lands ~60 A from the approaching H-alpha
+    # (z = -0.118); left out it spoils the fit, fitted as a line of the same component it does not
+    kms = u.km / u.s
+    za, zr = float(dk.redshift(0.24, 53)), float(dk.redshift(0.24, 127))
+    comps = [
+        LineComponent(n, z=z, fwhm=800 * kms, strength=q)
+        for n, q0 in (("H-alpha", 2.0), ("H-beta", 0.8))
+        for z, q in ((za, q0), (zr, 0.7 * q0))
+    ]
+    s = synthesize_spectrum(np.arange(3800.0, 9000.0, 2.0) * u.AA, comps, snr=30, seed=8, resolution=4000)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t = measure_lines(s, "H-alpha", components=2, method=method, z_range=(-0.42, 0.73))
+    assert list(t["status"]) == ["ok", "ok"], list(t["message"])
+    assert "H-beta (receding)" in t.meta["also_fitted"]
+    assert abs(t["z"][0] - za) < 4 * t["z_err"][0] and abs(t["z"][1] - zr) < 4 * t["z_err"][1]
+
+
 def test_host_argument_is_checked():
     s = jet_pair_spectrum(0.2, 60)[0]
     with pytest.raises(ValueError, match="host must be"):
