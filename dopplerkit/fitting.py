@@ -566,6 +566,17 @@ def fit_precessing_jet(
             raise ValueError(f"z_systemic must be a number or (value, sd), got {z_systemic!r}")
         zsys0 = _measured(z_systemic[0], "z_systemic value")
         zsys_prior = (zsys0, _measured(z_systemic[1], "z_systemic sd", positive=True))
+    for name, v in (("z_err", z_err), ("z_2_err", z_2_err), ("z_1", z_1), ("z_2", z_2), ("t", t)):
+        if v is not None and np.asarray(getattr(v, "value", v)).dtype.kind in "bUSO":
+            raise TypeError(f"{name} must be numbers (an array or a number), got {np.asarray(v).dtype.kind!r}-type values {v!r:.60}")
+    if period_range is not None:
+        try:
+            p_lo, p_hi = (float(_dimensionless(v.to_value(u.d) if isinstance(v, u.Quantity) else v, "period_range")) for v in period_range)
+        except (TypeError, ValueError) as exc:
+            raise ValueError(f"period_range must be (shortest, longest) period in days, got {period_range!r}") from exc
+        if not (np.isfinite(p_lo) and np.isfinite(p_hi) and 0 < p_lo < p_hi):
+            raise ValueError(f"period_range must be (shortest, longest) with 0 < shortest < longest, finite (days), got {period_range!r}")
+        period_range = (p_lo, p_hi)
     e1 = np.broadcast_to(np.asarray(z_err, float), tt.shape).copy()
     e2 = np.broadcast_to(np.asarray(z_err if z_2_err is None else z_2_err, float), tt.shape).copy()
     if tt.ndim != 1 or z1.shape != tt.shape or z2.shape != tt.shape:

@@ -218,7 +218,7 @@ def _read_header(buf: bytes, start: int):
 
 
 def _quick_fits_kind(path) -> str | None:
-    """"tabular-fits" when the headers alone show a primary HDU without data and a binary table
+    """ "tabular-fits" when the headers alone show a primary HDU without data and a binary table
     after it (read without astropy: the common case costs a fraction of a millisecond); None when
     unsure (astropy decides)."""
     if str(path).lower().endswith(".gz"):

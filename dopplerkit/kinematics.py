@@ -21,7 +21,8 @@ Conventions (used by every function here and in the rest of dopplerkit)
   angles outside [0, 180] deg are refused. Returned angles are Quantities in degrees;
   speeds and redshifts are plain floats or arrays.
 * NaN inputs propagate to NaN outputs without an error (so masked array elements
-  stay masked); every other invalid value raises.
+  stay masked); every other invalid value (booleans, text, infinities, values out of
+  range, wrong units) raises TypeError, ValueError or UnitsError naming the parameter.
 
 The product ``1 - beta cos theta`` is evaluated as
 ``(1 - beta) + 2 beta sin**2(theta/2)`` with ``1 - beta = 1/(Gamma**2 (1 + beta))``
@@ -104,12 +105,19 @@ def _first_bad(arr: np.ndarray, bad: np.ndarray) -> str:
 
 
 def _to_float_array(value, name: str) -> np.ndarray:
-    if isinstance(value, (str, bytes)) or value is None:
+    """Float array from a number or array; booleans, text and infinities are refused (NaN passes)."""
+    if isinstance(value, (str, bytes, bool, np.bool_)) or value is None:
         raise TypeError(f"{name} must be a number or array of numbers, got {type(value).__name__} {value!r}")
+    raw = np.asarray(getattr(value, "value", value))
+    if raw.dtype.kind == "b":
+        raise TypeError(f"{name} must be a number or array of numbers, got booleans ({_describe(value)})")
     try:
         arr = np.asarray(value, dtype=float)
     except (TypeError, ValueError) as exc:
         raise TypeError(f"{name} must be a number or array of numbers, got {type(value).__name__}") from exc
+    inf = np.isinf(arr)
+    if inf.any():
+        raise ValueError(f"{name} must be finite (NaN passes through as a missing value), got {_first_bad(arr, inf)}")
     return arr
 
 
@@ -143,7 +151,7 @@ def _angle(value, name: str = "theta", *, lo: float = 0.0, hi: float = 180.0) ->
 def _dimensionless(value, name: str) -> np.ndarray:
     if isinstance(value, u.Quantity):
         try:
-            return np.asarray(value.to_value(u.dimensionless_unscaled), dtype=float)
+            return _to_float_array(value.to_value(u.dimensionless_unscaled), name)
         except u.UnitConversionError as exc:
             raise u.UnitsError(f"{name} must be dimensionless, got unit {value.unit!r} ({_describe(value)})") from exc
     return _to_float_array(value, name)
