@@ -816,8 +816,8 @@ def run_batch(
     ----------
     spectra_dir : str or Path
         Directory searched recursively for spectra.
-    config : str, Path or BatchConfig
-        The TOML configuration (see :func:`load_config`).
+    config : str, Path, dict or BatchConfig
+        The TOML configuration file (see :func:`load_config`), or the same as a dict.
     output : str or Path
         Result table; format from the extension (.ecsv, .csv, .fits, .parquet). Never an input
         file; an existing file dopplerkit did not write is replaced only with ``overwrite``.
@@ -858,7 +858,12 @@ def run_batch(
     d = Path(spectra_dir)
     if not d.is_dir():
         raise ConfigError(f"SPECTRA_DIR {str(d)!r} is not a directory")
-    cfg = config if isinstance(config, BatchConfig) else load_config(config)
+    if isinstance(config, BatchConfig):
+        cfg = config
+    elif isinstance(config, dict):
+        cfg = parse_config(config)
+    else:
+        cfg = load_config(config)
     output = Path(output)
     from .io import TABLE_FORMATS
 
