@@ -603,7 +603,8 @@ def _read_previous(output: Path, config_hash: str) -> dict:
 
             t = Table.read(output)
             for r in t:
-                d = {k: (r[k].item() if hasattr(r[k], "item") else r[k]) for k in t.colnames}
+                # an empty text cell comes back masked: it is empty (None), never the masked constant's 0.0
+                d = {k: (None if np.ma.is_masked(r[k]) else r[k].item() if hasattr(r[k], "item") else r[k]) for k in t.colnames}
                 take({k: (v.decode("utf-8") if isinstance(v, bytes) else v) for k, v in d.items()})
         except Exception as exc:
             print(
