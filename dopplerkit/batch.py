@@ -563,6 +563,10 @@ def _process_chunk(paths, fmts, cfg):
     for p, fmt in zip(paths, fmts, strict=True):
         t0 = time.perf_counter()
         try:
+            digest = _content_hash(p)  # of the bytes about to be fitted (a file changed later is refitted on --resume)
+        except OSError:
+            digest = ""
+        try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 row = _fit_one(p, fmt, cfg, cache)
@@ -571,6 +575,7 @@ def _process_chunk(paths, fmts, cfg):
             msg = str(exc).replace("\n", " ")
             row = {"file": p, "status": "error", "message": f"{type(exc).__name__}: {msg}"}
         row["seconds"] = time.perf_counter() - t0
+        row["file_hash"] = digest
         out.append(row)
     return out
 
@@ -635,17 +640,26 @@ def _stamp(path: Path) -> tuple[int, int]:
     return int(st.st_size), int(st.st_mtime_ns)
 
 
+def _content_hash(path) -> str:
+    """Short hash of a file's bytes (BLAKE2b, 64 bits): what --resume compares beside size and time."""
+    h = hashlib.blake2b(digest_size=8)
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
 def _still_valid(row: dict, path: Path) -> bool:
-    """A previous row can be kept: it finished (not an error) and its input has not changed since."""
+    """A previous row can be kept: it finished (not an error) and its input has not changed since
+    (same size, modification time and content hash)."""
     if row.get("status") not in ("ok", "suspect"):
         return False
     try:
         size, mtime = _stamp(path)
-    except OSError:
-        return False
-    try:
-        return int(row.get("file_size", -1)) == size and int(row.get("file_mtime_ns", -1)) == mtime
-    except (TypeError, ValueError):
+        if not (int(row.get("file_size", -1)) == size and int(row.get("file_mtime_ns", -1)) == mtime):
+            return False
+        return bool(row.get("file_hash")) and row.get("file_hash") == _content_hash(path)
+    except (OSError, TypeError, ValueError):
         return False
 
 
@@ -769,6 +783,7 @@ def _to_table(rows: list[dict]):
         "seconds",
         "file_size",
         "file_mtime_ns",
+        "file_hash",
         "config_hash",
         "dopplerkit_version",
     ]
@@ -781,7 +796,7 @@ def _to_table(rows: list[dict]):
     data = {}
     for k in cols:
         vals = [r.get(k) for r in rows]
-        if k in ("file", "status", "message", "flags", "continuum", "host", "axis_unit", "config_hash", "dopplerkit_version"):
+        if k in ("file", "status", "message", "flags", "continuum", "host", "axis_unit", "file_hash", "config_hash", "dopplerkit_version"):
             data[k] = [("" if v is None else str(v)) for v in vals]
         elif k in ("file_size", "file_mtime_ns"):
             data[k] = np.array([-1 if v is None else int(v) for v in vals], dtype=np.int64)

@@ -460,6 +460,18 @@ def test_resume_refits_a_changed_input(small, tmp_path):
     assert again["beta"][i] != first["beta"][i]
     j = list(again["file"]).index(str(small["dir"] / "é0.fits"))
     assert again["beta"][j] == first["beta"][j] and again["seconds"][j] == first["seconds"][j]  # unchanged input kept
+    # same size and modification time, other bytes (a copy that kept its time stamp): the content hash tells
+    same = small["dir"] / "é2.fits"
+    st = same.stat()
+    data = bytearray(same.read_bytes())
+    other = bytearray((small["dir"] / "é0.fits").read_bytes())
+    assert len(data) == len(other)
+    same.write_bytes(bytes(other))
+    os.utime(same, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert _run(small, out, "--resume") in (0, 1)
+    third = Table.read(out)
+    k = list(third["file"]).index(str(same))
+    assert third["beta"][k] == third["beta"][j] != again["beta"][k]  # refitted: now the same spectrum as é0
 
 
 @pytest.mark.parametrize("ext", [".ecsv", ".csv", ".fits"])
