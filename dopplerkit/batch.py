@@ -765,43 +765,68 @@ class _OutputLock:
         return False
 
 
+_TEXT_COLUMNS = ("file", "status", "message", "flags", "continuum", "host", "axis_unit", "file_hash", "config_hash", "dopplerkit_version")
+_INT_COLUMNS = ("file_size", "file_mtime_ns")
+_FIXED_COLUMNS = ["file", "status", "message"]
+_TAIL_COLUMNS = [
+    "beta",
+    "beta_err",
+    "viewing_angle",
+    "viewing_angle_err",
+    "redchi",
+    "p_value",
+    "continuum",
+    "host",
+    "flags",
+    "axis_unit",
+    "seconds",
+    "file_size",
+    "file_mtime_ns",
+    "file_hash",
+    "config_hash",
+    "dopplerkit_version",
+]
+
+
 def _to_table(rows: list[dict]):
+    """The result table of these rows, in this order."""
+    return _fill_table(lambda: iter(enumerate(rows)), len(rows))
+
+
+def _fill_table(source, n: int):
+    """Result table of ``n`` rows from ``source()``, an iterable of (position, row) that may repeat a
+    position (the last row wins). Two passes over the source (columns, then values), so the rows
+    never have to be held in memory together: only the table's own columns are."""
     from astropy.table import Table
 
-    fixed = ["file", "status", "message"]
-    tail = [
-        "beta",
-        "beta_err",
-        "viewing_angle",
-        "viewing_angle_err",
-        "redchi",
-        "p_value",
-        "continuum",
-        "host",
-        "flags",
-        "axis_unit",
-        "seconds",
-        "file_size",
-        "file_mtime_ns",
-        "file_hash",
-        "config_hash",
-        "dopplerkit_version",
-    ]
-    keys = []
-    for r in rows:
+    keys, seen = [], set()
+    for _, r in source():
         for k in r:
-            if k not in keys and k not in fixed and k not in tail:
+            if k not in seen:
+                seen.add(k)
                 keys.append(k)
-    cols = fixed + keys + [k for k in tail if any(k in r for r in rows)]
+    middle = [k for k in keys if k not in _FIXED_COLUMNS and k not in _TAIL_COLUMNS]
+    cols = _FIXED_COLUMNS + middle + [k for k in _TAIL_COLUMNS if k in seen]
     data = {}
     for k in cols:
-        vals = [r.get(k) for r in rows]
-        if k in ("file", "status", "message", "flags", "continuum", "host", "axis_unit", "file_hash", "config_hash", "dopplerkit_version"):
-            data[k] = [("" if v is None else str(v)) for v in vals]
-        elif k in ("file_size", "file_mtime_ns"):
-            data[k] = np.array([-1 if v is None else int(v) for v in vals], dtype=np.int64)
+        if k in _TEXT_COLUMNS:
+            data[k] = np.full(n, "", dtype=object)
+        elif k in _INT_COLUMNS:
+            data[k] = np.full(n, -1, dtype=np.int64)
         else:
-            data[k] = np.array([np.nan if v is None else float(v) for v in vals])
+            data[k] = np.full(n, np.nan)
+    for i, r in source():
+        for k in cols:
+            v = r.get(k)
+            if k in _TEXT_COLUMNS:
+                data[k][i] = "" if v is None else str(v)
+            elif k in _INT_COLUMNS:
+                data[k][i] = -1 if v is None else int(v)
+            else:
+                data[k][i] = np.nan if v is None else float(v)
+    for k in _TEXT_COLUMNS:
+        if k in data:
+            data[k] = data[k].astype(str) if n else np.array([], dtype=str)
     t = Table(data)
     if "viewing_angle" in t.colnames:
         t["viewing_angle"].unit = "deg"
@@ -930,7 +955,7 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             stamps[str(p)] = _stamp(p)
         except OSError:
             stamps[str(p)] = (-1, -1)
-    rows = dict(keep)
+    done: set = set(keep)
     t_start = time.perf_counter()
     n_new = 0
     pool = None
@@ -945,6 +970,13 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
         bar = tqdm(total=len(paths), initial=len(keep), unit="spectrum", desc="fitting", file=out, dynamic_ncols=True)
     code = None
     try:
+        if journal.exists() and journal.stat().st_size:
+            with journal.open("rb") as fh:
+                fh.seek(-1, os.SEEK_END)
+                torn = fh.read(1) != b"\n"
+            if torn:  # a line torn by a crash: end it, so the next row starts a line of its own
+                with journal.open("a") as fh:
+                    fh.write("\n")
         with journal.open("a") as jf:
 
             def record(chunk_rows):
@@ -953,7 +985,7 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
                     r["file_size"], r["file_mtime_ns"] = stamps.get(r["file"], (-1, -1))
                     r["config_hash"] = h
                     r["dopplerkit_version"] = __version__
-                    rows[r["file"]] = r
+                    done.add(r["file"])  # the row itself lives in the journal only (memory stays flat)
                     jf.write(json.dumps(r, default=float, allow_nan=True) + "\n")
                 jf.flush()
                 os.fsync(jf.fileno())
@@ -978,8 +1010,7 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             bar.close()
     if code is not None:
         return code, None
-    ordered = [rows[str(p)] for p in paths if str(p) in rows]
-    table = _to_table(ordered)
+    table = _table_from_journal(journal, paths, keep, h, done)
     write_table(table, output)
     journal.unlink(missing_ok=True)
     n_ok = int(np.sum(table["status"] == "ok"))
@@ -998,6 +1029,30 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             file=out,
         )
     return (EXIT_OK if n_ok == len(table) else EXIT_SOME_FAILED), table
+
+
+def _table_from_journal(journal: Path, paths, keep: dict, config_hash: str, done: set):
+    """The result table in input order: rows kept from before, then this run's rows streamed from the journal."""
+    position = {}
+    for p in paths:
+        if str(p) in done:
+            position[str(p)] = len(position)
+
+    def source():
+        for f, r in keep.items():
+            if f in position:
+                yield position[f], r
+        if journal.exists():
+            with journal.open() as fh:
+                for line in fh:
+                    try:
+                        r = json.loads(line)
+                    except json.JSONDecodeError:
+                        continue
+                    if isinstance(r, dict) and r.get("config_hash") == config_hash and r.get("file") in position:
+                        yield position[r["file"]], r
+
+    return _fill_table(source, len(position))
 
 
 class _stop_on_sigterm:
