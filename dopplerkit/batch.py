@@ -1157,19 +1157,36 @@ def _run_local(workers, chunks, cfgd, record, out=sys.stderr, quiet=False, pool=
 
 def _pool_pass(ex, chunks, cfgd, record):
     """Run chunks in a process pool; return the chunks whose worker died (BrokenProcessPool)."""
-    from concurrent.futures import as_completed
+    from concurrent.futures import FIRST_COMPLETED, wait
     from concurrent.futures.process import BrokenProcessPool
 
     failed = []
+    todo = iter(chunks)
+    in_flight = max(2, 2 * getattr(ex, "_max_workers", 2))  # a few chunks queued per worker; results never pile up
     try:
-        futs = {ex.submit(process_chunk, p, f, cfgd): (p, f) for p, f in chunks}
-        for fut in as_completed(futs):
-            try:
-                res = fut.result()
-            except BrokenProcessPool:
-                failed.append(futs[fut])
-                continue
-            record(res)
+        futs = {}
+        for p, f in todo:
+            futs[ex.submit(process_chunk, p, f, cfgd)] = (p, f)
+            if len(futs) >= in_flight:
+                break
+        while futs:
+            finished, _ = wait(futs, return_when=FIRST_COMPLETED)
+            for fut in finished:
+                job = futs.pop(fut)
+                try:
+                    res = fut.result()
+                except BrokenProcessPool:
+                    failed.append(job)
+                    continue
+                record(res)
+            for p, f in todo:
+                try:
+                    futs[ex.submit(process_chunk, p, f, cfgd)] = (p, f)
+                except BrokenProcessPool:
+                    failed.append((p, f))
+                    continue
+                if len(futs) >= in_flight:
+                    break
     except BaseException:
         _kill_pool(ex)
         raise
@@ -1205,9 +1222,12 @@ def _run_dask(address, chunks, cfgd, record, timeout=60.0):
         except (TimeoutError, OSError) as exc:
             raise ClusterError(f"the Dask scheduler at {address} had no worker for {timeout:g} s ({type(exc).__name__})") from None
         futs = [client.submit(process_chunk, p, f, cfgd, pure=False, retries=1) for p, f in chunks]
+        done = as_completed(futs)
+        del futs  # each result is released once recorded: neither the client nor the workers keep them
         try:
-            for fut in as_completed(futs):
+            for fut in done:
                 record(fut.result())
+                fut.release()
         except (OSError, TimeoutError) as exc:
             raise ClusterError(f"lost the Dask scheduler at {address} ({type(exc).__name__}: {exc})") from None
         except Exception as exc:

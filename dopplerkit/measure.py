@@ -411,12 +411,33 @@ def _find_host(setup: FitSetup, x, y, sig):
     return _Host(names, rest, z, dv, fw, np.asarray(snr, float))
 
 
+#: Starting values are searched on pixels of at least this many km/s (finer spectra are averaged
+#: in blocks for the search only; the fit itself uses every pixel).
+START_PIXEL_KMS = 5.0
+
+
+def _binned(x, y, sig, factor: int):
+    """Block averages of ``factor`` pixels (the error of a mean); a short tail is dropped."""
+    n = (x.size // factor) * factor
+    xb = x[:n].reshape(-1, factor).mean(axis=1)
+    yb = y[:n].reshape(-1, factor).mean(axis=1)
+    sb = np.sqrt(np.square(sig[:n]).reshape(-1, factor).sum(axis=1)) / factor
+    return xb, yb, sb
+
+
 def _begin(setup: FitSetup, x, y, sig, window, window_kms):
     """Starting values, continuum and host lines: (starts, cont, host).
 
     Host lines are looked for only when one of them falls in a fit window of the started
-    components (elsewhere they cannot matter), and the start is then redone with them.
+    components (elsewhere they cannot matter), and the start is then redone with them. On a
+    spectrum sampled much finer than START_PIXEL_KMS, the search runs on block averages.
     """
+    px_kms = float(np.median(np.abs(np.diff(x)) / np.abs(x[1:]))) * C_KMS if x.size > 1 else np.inf
+    factor = int(START_PIXEL_KMS / px_kms) if px_kms > 0 else 1
+    if factor >= 2 and x.size // factor >= 50:
+        xb, yb, sb = _binned(x, y, sig, factor)
+        starts, contb, host = _begin(setup, xb, yb, sb, window, window_kms)
+        return starts, np.interp(x, xb, contb), host
     starts, cont = _starts(setup, x, y, sig)
     if not setup.host or setup.kind != "emission":
         return starts, cont, None
@@ -801,10 +822,7 @@ class LineFitter:
 
         NaN pixels are dropped; flux and flux_err in the rows are in the units of ``y``.
         """
-        x, y, sigma = _clean(x, y, sigma)
-        order = np.argsort(x)
-        fscale = float(np.median(np.abs(y))) or float(np.median(sigma)) or 1.0
-        x, y, sigma = x[order], y[order] / fscale, sigma[order] / fscale
+        x, y, sigma, fscale = _prepare(x, y, sigma)
         unit = getattr(self, "unit", None)
         if self.setup.axis_medium == "air":
             if unit is None:
@@ -1588,6 +1606,38 @@ def _rows_to_axis(setup, rows, unit):
         r["centre"], r["centre_err"] = float(a), float(r["centre_err"] * d)
 
 
+#: Spectra sampled finer than this (km/s per pixel) are averaged in blocks to about this pixel
+#: size before fitting: a Gaussian of FWHM >= 30 km/s (the narrowest fitted) changes by < 0.1%
+#: over such a block, and memory and time stop growing with needless pixels.
+FIT_PIXEL_KMS = 1.0
+
+
+def _prepare(x, y, sigma, mask=None):
+    """Clean, sort ascending, average needlessly fine pixels, scale: (x, y, sigma, flux scale).
+
+    The inputs are never modified; copies are made only where something changes.
+    """
+    x, y, sigma = _clean(x, y, sigma, mask)
+    d = np.diff(x)
+    if not np.all(d > 0):
+        if np.all(d < 0):
+            x, y, sigma = x[::-1], y[::-1], sigma[::-1]
+        else:
+            order = np.argsort(x, kind="stable")
+            x, y, sigma = x[order], y[order], sigma[order]
+    del d
+    if x.size > 1000:
+        stride = max(1, x.size // 1000)
+        sub = x[::stride]
+        px_kms = float(np.median(np.abs(np.diff(sub)) / np.abs(sub[1:]))) * C_KMS / stride
+        factor = int(FIT_PIXEL_KMS / px_kms) if px_kms > 0 else 1
+        if factor >= 2:
+            x, y, sigma = _binned(x, y, sigma, factor)
+    # work in units of the typical flux so lmfit's numerical derivatives are well scaled
+    fscale = float(np.median(np.abs(y))) or float(np.median(sigma)) or 1.0
+    return x, y / fscale, sigma / fscale, fscale
+
+
 def _clean(x, y, sigma, mask=None):
     x = np.asarray(x, float)
     y = np.asarray(y, float)
@@ -1605,8 +1655,11 @@ def _clean(x, y, sigma, mask=None):
         raise ValueError(
             f"uncertainty must be > 0 for every unmasked pixel, got sigma = {float(sigma[i])!r} at pixel {i}; mask such pixels"
         )
-    if good.sum() < 5:
-        raise ValueError(f"fewer than 5 usable pixels ({int(good.sum())}); nothing to fit")
+    n_good = int(good.sum())
+    if n_good < 5:
+        raise ValueError(f"fewer than 5 usable pixels ({n_good}); nothing to fit")
+    if n_good == x.size:
+        return x, y, sigma  # nothing to drop: no copies
     return x[good], y[good], sigma[good]
 
 
@@ -1981,11 +2034,7 @@ def measure_lines(
             "the medium of the wavelength axis is unknown (no meta['medium'], no FITS CTYPE AWAV/WAVE): pass medium='air' or 'vacuum' so air and vacuum rest wavelengths are not mixed"
         )
     setup = _make_setup(lines, unit, med, components, tie, kind, profile, continuum, continuum_degree, z_range, host, host_z)
-    x, y, sig = _clean(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), spectrum.mask)
-    order = np.argsort(x)
-    # work in units of the typical flux so lmfit's numerical derivatives are well scaled
-    fscale = float(np.median(np.abs(y))) or float(np.median(sig)) or 1.0
-    x, y, sig = x[order], y[order] / fscale, sig[order] / fscale
+    x, y, sig, fscale = _prepare(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), spectrum.mask)
     x = _to_fit_axis(setup, x, unit)
     starts, cont0, found = _begin(setup, x, y, sig, window, window_kms)
     if method == "fast":
