@@ -9,7 +9,7 @@ Scenarios
 ``binary_dkx1/``   the invented precessing-jet X-ray binary "DKX-1": 64 optical epochs with
                    H-alpha and He I 5876 from both jets (FITS in ``fits/``, ECSV in ``ecsv/``),
                    ``truth.toml`` with the model parameters and ``epochs.ecsv`` with true shifts.
-``quasar_dkq7/``   the invented quasar "DKQ-7" at z = 1.184 with an ultra-fast outflow seen as
+``quasar_dkq7/``   the invented quasar "DKQ-7" at z = 0.871 with an ultra-fast outflow seen as
                    blueshifted Fe XXV He-alpha and Fe XXVI Ly-alpha absorption, 2-10 keV.
 ``survey/``        200 single-epoch spectra of invented jet sources (one H-alpha jet pair each)
                    plus deliberately bad files, ``truth.ecsv`` and ``config.toml`` for batch fits.
@@ -40,7 +40,7 @@ BINARY = {
 }
 
 #: The invented quasar DKQ-7 with an ultra-fast outflow along the line of sight.
-QUASAR = {"name": "DKQ-7", "z_cosmo": 1.184, "beta_outflow": 0.23, "seed": 7}
+QUASAR = {"name": "DKQ-7", "z_cosmo": 0.871, "beta_outflow": 0.23, "seed": 7}
 
 #: The invented survey of jet sources.
 SURVEY = {"n": 200, "seed": 4242, "beta_range": (0.05, 0.30), "angle_range_deg": (15.0, 85.0)}
@@ -317,9 +317,12 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
     from .io import write_table
 
     write_table(lines_t, res / "dkx1_lines.ecsv")
-    cmp = compare_models("precessing-jet", arr[:, 0], arr[:, 1], arr[:, 2], arr[:, 3], z_2_err=arr[:, 4])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        cmp = compare_models("precessing-jet", arr[:, 0], arr[:, 1], arr[:, 2], arr[:, 3], z_2_err=arr[:, 4])
     print(cmp.relativistic.report(), file=out)
     print(cmp.report(), file=out)
+    _warning_summary(caught, out)
     print(
         f"  (invented truth: beta {BINARY['beta']}, inclination {BINARY['inclination_deg']} deg, cone {BINARY['cone_angle_deg']} deg, period {BINARY['period_d']} d)",
         file=out,
@@ -356,10 +359,23 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
 
 def _pm(value: float, err: float) -> str:
     """value +/- error, both rounded to two significant digits of the error."""
-    if not (np.isfinite(err) and err > 0):
-        return f"{value:.6g} +/- {err}"
-    digits = max(0, 1 - int(np.floor(np.log10(err))))
-    return f"{value:.{digits}f} +/- {err:.{digits}f}"
+    from ._format import with_error
+
+    return with_error(float(value), float(err))
+
+
+def _warning_summary(caught, out) -> None:
+    """The warnings of a demo step, counted by kind, each with its first message (in full)."""
+    from collections import Counter
+
+    if not caught:
+        return
+    counts = Counter(w.category.__name__ for w in caught)
+    first = {}
+    for w in caught:
+        first.setdefault(w.category.__name__, str(w.message))
+    for name, n in counts.most_common():
+        print(f"  warnings: {n} x {name}; the first: {first[name]}", file=out)
 
 
 def main(argv=None) -> int:

@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 
+from ._format import with_error
 from .exceptions import DegenerateGeometryWarning, FitAtBoundWarning, FitQualityWarning
 from .kinematics import SPEED_OF_LIGHT_KMS, _counterjet_ratio, _dimensionless, _proper_motion_rates, solve_jet_pair
 
@@ -119,9 +120,9 @@ class KinematicFit:
             if name == "eta":
                 continue
             unit = " deg" if name in ("viewing_angle", "inclination", "cone_angle") else (" d" if name in ("period", "t0") else "")
-            err = "(no error)" if p.stderr is None else f"+/- {p.stderr:.4g}"
             tag = " (derived)" if p.expr else ("" if p.vary else " (fixed)")
-            lines.append(f"  {name:<15} {p.value:.6g} {err}{unit}{tag}")
+            shown = f"{p.value:.6g}" if not p.vary and not p.expr else with_error(p.value, p.stderr)
+            lines.append(f"  {name:<15} {shown}{unit}{tag}")
         r = self.result
         lines.append(f"  chi-square {r.chisqr:.4g} for {r.ndata} data, {r.nvarys} free parameters (dof {r.nfree})")
         if r.nfree > 0:
@@ -926,7 +927,7 @@ class ModelComparison:
         t = self.table()
         lines = ["relativistic vs Galilean reading of the same data", "-" * 50]
         lines += [
-            f"  {row['model']:<28} chi2 {row['chi2']:.4g} (dof {row['dof']}), AIC {row['aic']:.4g}, BIC {row['bic']:.4g}, beta {row['beta']:.5f} +/- {row['beta_err']:.2g}, angle {row['angle']:.3f} deg"
+            f"  {row['model']:<28} chi2 {row['chi2']:.4g} (dof {row['dof']}), AIC {row['aic']:.4g}, BIC {row['bic']:.4g}, beta {with_error(row['beta'], row['beta_err'])}, angle {row['angle']:.3f} deg"
             for row in t
         ]
         dbeta = self.galilean.beta - self.relativistic.beta

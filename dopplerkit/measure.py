@@ -1002,7 +1002,7 @@ class LineFitter:
             nh = len(host.names)
             info["host"] = _host_note(host, p[-nh:] / err[-nh:])
         info["also_fitted"] = extra
-        _check_identification(s, rows, x, y, sigma, host=host)
+        _check_identification(s, rows, x, y, sigma, host=host, also=extra)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
@@ -1288,7 +1288,7 @@ def _usable(r) -> bool:
     )
 
 
-def _check_identification(setup, rows, x, y, sig, host=None):
+def _check_identification(setup, rows, x, y, sig, host=None, also=()):
     """Test each emission line's identification against the other lines of the same gas.
 
     ``id_contradicted``: a required companion (``_EVIDENCE``: a redder Balmer line, the other
@@ -1316,7 +1316,7 @@ def _check_identification(setup, rows, x, y, sig, host=None):
                 f"measured {f:.3g} +- {fe:.3g}: the line is probably not {r['line']}"
             )
     _check_alternatives(setup, rows, x, y, sig, others)
-    _check_overlaps(setup, rows, x, y, sig, others)
+    _check_overlaps(setup, rows, x, y, sig, others, also)
 
 
 def _check_alternatives(setup, rows, x, y, sig, others):
@@ -1406,9 +1406,12 @@ def _check_edges(rows, x):
 #: A line that may hide under another component's line, bounded by a line of the same gas measured
 #: elsewhere: blender -> ((sibling, largest blender/sibling flux ratio), ...). He I 6678/5876 = 0.28
 #: in case B (Benjamin, Skillman & Smits 1999, ApJ 514, 307; from memory), H-gamma/H-beta = 0.47,
-#: H-delta/H-beta = 0.26 (Osterbrock & Ferland 2006, table 4.2; from memory); generous bounds.
+#: H-delta/H-beta = 0.26 (Osterbrock & Ferland 2006, table 4.2; from memory); generous bounds
+#: (reddening can raise H-beta/H-gamma and 5876/6678 above case B: 5 and 6 allow E(B-V) ~ 2).
 _SIBLINGS = {
+    "He I 5876": (("He I 6678", 6.0),),
     "He I 6678": (("He I 5876", 0.4),),
+    "H-beta": (("H-gamma", 5.0),),
     "H-gamma": (("H-beta", 0.6),),
     "H-delta": (("H-beta", 0.4), ("H-gamma", 0.8)),
 }
@@ -1430,7 +1433,7 @@ def _sibling_bound(setup, name, zb, fwhm, x, y, sig, others) -> float:
     return bound
 
 
-def _check_overlaps(setup, rows, x, y, sig, fitted):
+def _check_overlaps(setup, rows, x, y, sig, fitted, also=()):
     """Flag ``blend`` where a line of the same gas from another component would pull a measured centre by more than its error.
 
     The other line's flux is taken from that component's measured line and a generous ratio
@@ -1446,25 +1449,28 @@ def _check_overlaps(setup, rows, x, y, sig, fitted):
         fw = abs(r["centre"]) * r["fwhm"] / C_KMS
         if not (np.isfinite(fw) and np.isfinite(r["centre_err"]) and r["line"] in ratio):
             continue
+        worst: dict = {}  # (blender, component) -> (largest pull, position): one note each
         for g, k, zb, lb, fb, label in others:
             if (g, k) == (r["group"], r["k"]) or not np.isfinite(fb):
                 continue
             for name, rest, q in setup.same_gas:
                 pos = rest * (1 + zb) if setup.wavelike else rest / (1 + zb)
                 offset = abs(pos - r["centre"])
-                if name == r["line"] or offset > fw:
-                    continue
+                if name == r["line"] or offset > fw or f"{name} ({label})" in also:
+                    continue  # (a line fitted beside this one, at its component's z, is modelled, not a hidden blend)
                 f_other = abs(fb) * q / ratio[lb]
                 if offset * f_other / (abs(r["flux"]) + f_other) > r["centre_err"]:
                     f_other = min(f_other, _sibling_bound(setup, name, zb, fwhm_of[(g, k)], x, y, sig, fitted))
                 pull = offset * f_other / (abs(r["flux"]) + f_other)
-                if pull > r["centre_err"]:
-                    if "blend" not in r["flags"]:
-                        r["flags"].append("blend")
-                    r["notes"].append(
-                        f"{r['line']} {r['component']} at {r['centre']:.6g} may be blended with {name} of the {label} component "
-                        f"(expected at {pos:.6g}): its centre could be pulled by up to {pull:.2g}, more than its error {r['centre_err']:.2g}"
-                    )
+                if pull > r["centre_err"] and pull > worst.get((name, label), (0.0,))[0]:
+                    worst[(name, label)] = (pull, pos)
+        for (name, label), (pull, pos) in worst.items():
+            if "blend" not in r["flags"]:
+                r["flags"].append("blend")
+            r["notes"].append(
+                f"{r['line']} {r['component']} at {r['centre']:.6g} may be blended with {name} of the {label} component "
+                f"(expected at {pos:.6g}): its centre could be pulled by up to {pull:.2g}, more than its error {r['centre_err']:.2g}"
+            )
 
 
 def _row(s, lidx, k, z, ze, w, we, area, area_err, at_bound, dx, group=0):
@@ -1808,7 +1814,7 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         pars = [result.params[f"cont_c{i}"] for i in range(nb - nh, nb)]
         info["host"] = _host_note(host, [q.value / q.stderr if q.stderr else np.nan for q in pars])
     info["also_fitted"] = also
-    _check_identification(setup, rows, x, y, sig, host=host)
+    _check_identification(setup, rows, x, y, sig, host=host, also=also)
     _check_edges(rows, x)
     _assess(setup, rows, info)
     return rows, info, result
