@@ -793,18 +793,20 @@ def _to_table(rows: list[dict]):
     return _fill_table(lambda: iter(enumerate(rows)), len(rows))
 
 
-def _fill_table(source, n: int):
+def _fill_table(source, n: int, keys=None):
     """Result table of ``n`` rows from ``source()``, an iterable of (position, row) that may repeat a
-    position (the last row wins). Two passes over the source (columns, then values), so the rows
-    never have to be held in memory together: only the table's own columns are."""
+    position (the last row wins). Without ``keys`` (the column names) two passes over the source
+    (columns, then values), so the rows never have to be held in memory together."""
     from astropy.table import Table
 
-    keys, seen = [], set()
-    for _, r in source():
-        for k in r:
-            if k not in seen:
-                seen.add(k)
-                keys.append(k)
+    if keys is None:
+        keys, found = [], set()
+        for _, r in source():
+            for k in r:
+                if k not in found:
+                    found.add(k)
+                    keys.append(k)
+    seen = set(keys)
     middle = [k for k in keys if k not in _FIXED_COLUMNS and k not in _TAIL_COLUMNS]
     cols = _FIXED_COLUMNS + middle + [k for k in _TAIL_COLUMNS if k in seen]
     data = {}
@@ -937,7 +939,6 @@ def run_batch(
 
 
 def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out):
-    from .io import write_table
 
     h = cfg.hash
     previous = _read_previous(output, h) if resume else {}
@@ -1010,17 +1011,18 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             bar.close()
     if code is not None:
         return code, None
-    table = _table_from_journal(journal, paths, keep, h, done)
-    write_table(table, output)
+    table, counts = _write_results(journal, paths, keep, h, done, output)
     journal.unlink(missing_ok=True)
-    n_ok = int(np.sum(table["status"] == "ok"))
-    n_err = int(np.sum(table["status"] == "error"))
-    n_sus = len(table) - n_ok - n_err
+    n_ok, n_err = counts.get("ok", 0), counts.get("error", 0)
+    n_rows = sum(counts.values())
+    n_sus = n_rows - n_ok - n_err
     elapsed = time.perf_counter() - t_start
     if plot:
+        from astropy.table import Table
+
         from .plotting import plot_population
 
-        plot_population(table, path=plot)
+        plot_population(table if table is not None else Table.read(output), path=plot)
     if not quiet:
         rate = n_new / elapsed if elapsed > 0 else float("nan")
         print(
@@ -1028,31 +1030,80 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             f"elapsed {elapsed:.1f} s, {rate:.1f} spectra/s; results in {output}",
             file=out,
         )
-    return (EXIT_OK if n_ok == len(table) else EXIT_SOME_FAILED), table
+    return (EXIT_OK if n_ok == n_rows else EXIT_SOME_FAILED), table
 
 
-def _table_from_journal(journal: Path, paths, keep: dict, config_hash: str, done: set):
-    """The result table in input order: rows kept from before, then this run's rows streamed from the journal."""
-    position = {}
-    for p in paths:
-        if str(p) in done:
-            position[str(p)] = len(position)
+#: Text result tables (.ecsv, .csv) with more rows than this are written in blocks of this many
+#: rows, so memory does not grow with the number of spectra; run_batch then returns no table.
+STREAM_ROWS = 20000
 
-    def source():
-        for f, r in keep.items():
-            if f in position:
-                yield position[f], r
-        if journal.exists():
-            with journal.open() as fh:
-                for line in fh:
-                    try:
-                        r = json.loads(line)
-                    except json.JSONDecodeError:
-                        continue
-                    if isinstance(r, dict) and r.get("config_hash") == config_hash and r.get("file") in position:
-                        yield position[r["file"]], r
 
-    return _fill_table(source, len(position))
+def _write_results(journal: Path, paths, keep: dict, config_hash: str, done: set, output: Path):
+    """Write the result table in input order: rows kept from before, this run's rows from the journal.
+
+    One pass over the journal notes where each file's last row starts; rows are then read back
+    in input order, block by block. Returns (the table, or None when streamed; counts by status).
+    """
+    from collections import Counter
+
+    from .io import write_table, write_table_blocks
+
+    files = [str(p) for p in paths if str(p) in done]
+    position = {f: i for i, f in enumerate(files)}
+    n = len(files)
+    offsets = np.full(n, -1, dtype=np.int64)
+    keys: list = []
+    seen: set = set()
+
+    def note_keys(r):
+        for k in r:
+            if k not in seen:
+                seen.add(k)
+                keys.append(k)
+
+    for f, r in keep.items():
+        if f in position:
+            note_keys(r)
+    if journal.exists():
+        with journal.open("rb") as fh:
+            while True:
+                off = fh.tell()
+                line = fh.readline()
+                if not line:
+                    break
+                try:
+                    r = json.loads(line)
+                except (json.JSONDecodeError, UnicodeDecodeError):
+                    continue
+                if isinstance(r, dict) and r.get("config_hash") == config_hash and r.get("file") in position:
+                    offsets[position[r["file"]]] = off
+                    note_keys(r)
+
+    def rows(a, b):
+        with journal.open("rb") if journal.exists() else open(os.devnull, "rb") as fh:
+            for i in range(a, b):
+                if offsets[i] >= 0:
+                    fh.seek(int(offsets[i]))
+                    yield i - a, json.loads(fh.readline())
+                else:
+                    yield i - a, keep[files[i]]
+
+    counts: Counter = Counter()
+    if output.suffix.lower() in (".ecsv", ".csv") and n > STREAM_ROWS:
+
+        def blocks():
+            for a in range(0, n, STREAM_ROWS):
+                b = min(a + STREAM_ROWS, n)
+                t = _fill_table(lambda a=a, b=b: rows(a, b), b - a, keys)
+                counts.update(str(v) for v in t["status"])
+                yield t
+
+        write_table_blocks(blocks(), output)
+        return None, counts
+    table = _fill_table(lambda: rows(0, n), n, keys)
+    counts.update(str(v) for v in table["status"])
+    write_table(table, output)
+    return table, counts
 
 
 class _stop_on_sigterm:

@@ -670,6 +670,37 @@ def write_table(table, path: str | Path) -> Path:
     return path
 
 
+def write_table_blocks(blocks, path: str | Path) -> Path:
+    """Write a text table (.ecsv or .csv) given as successive astropy Tables of the same columns.
+
+    The first block brings the header (ECSV: column names, types, units, meta); later blocks add
+    only their data lines, formatted by astropy's own writer, so the file is what one
+    ``Table.write`` of all rows would give, without all rows in memory at once. Atomic like
+    :func:`write_table`.
+    """
+    import io as _io
+
+    path = Path(path)
+    fmt = TABLE_FORMATS.get(path.suffix.lower())
+    if fmt not in ("ascii.ecsv", "ascii.csv"):
+        raise ValueError(f"block-wise writing is for .ecsv and .csv tables, got {path.suffix!r}")
+    with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8", newline="") as fh:
+        names = None
+        for t in blocks:
+            buf = _io.StringIO()
+            t.write(buf, format=fmt)
+            lines = buf.getvalue().splitlines(keepends=True)
+            if names is None:
+                names = t.colnames
+                fh.writelines(lines)
+                continue
+            if t.colnames != names:
+                raise ValueError("every block must have the same columns")
+            body = [ln for ln in lines if not ln.startswith("#")]
+            fh.writelines(body[1:])  # the line of column names is already there
+    return path
+
+
 def _utf8_text_columns(table):
     """FITS text columns are ASCII: non-ASCII text (file names in any script) is stored as UTF-8 bytes.
 

@@ -681,3 +681,17 @@ def test_resume_from_a_finished_table_keeps_empty_text_empty(small, tmp_path, ex
     again = Table.read(out)
     for col in ("message", "flags", "host"):
         assert ["" if np.ma.is_masked(v) else str(v) for v in again[col]] == ["" if np.ma.is_masked(v) else str(v) for v in first[col]], col
+
+
+@pytest.mark.parametrize("ext", [".ecsv", ".csv"])
+def test_a_large_table_is_written_in_blocks_identical_to_one_write(survey, tmp_path, monkeypatch, ext):
+    # memory must not grow with the number of spectra: big text tables go out block by block
+    import dopplerkit.batch as batch
+
+    ref = tmp_path / f"ref{ext}"
+    assert _run(survey, ref, "--workers", "1") == 1  # the bad files give error rows
+    monkeypatch.setattr(batch, "STREAM_ROWS", 4)
+    out = tmp_path / f"blocks{ext}"
+    code, table = batch.run_batch(survey["dir"], survey["config"], out, workers=1, quiet=True)
+    assert code == 1 and table is None
+    _assert_same_table(ref, out)  # every column but the fit's run time, to the last digit

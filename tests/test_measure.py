@@ -392,7 +392,10 @@ def test_needlessly_fine_sampling_is_averaged_without_changing_the_answer():
     # 0.5 A, with the same S/N per unit wavelength: centres agree within their errors, errors agree
     # (a Gaussian of FWHM >= 30 km/s changes by < 0.1% over 1 km/s; common practice, no source)
     kms = u.km / u.s
-    comps = [LineComponent("H-alpha", z=-0.02, fwhm=600 * kms, strength=2.0), LineComponent("H-alpha", z=0.03, fwhm=600 * kms, strength=1.5)]
+    comps = [
+        LineComponent("H-alpha", z=-0.02, fwhm=600 * kms, strength=2.0),
+        LineComponent("H-alpha", z=0.03, fwhm=600 * kms, strength=1.5),
+    ]
     out = []
     for step, snr in ((0.5, 30.0), (0.005, 3.0)):
         s = synthesize_spectrum(np.arange(6200.0, 7000.0, step) * u.AA, comps, snr=snr, seed=4)
