@@ -28,6 +28,28 @@ from .plotting import PALETTE
 
 BEAMING_CHOICES = {"none": None, "blob": "blob", "continuous jet": "jet"}
 
+#: Figures are rendered at this many device pixels per CSS pixel (crisp on high-density
+#: screens) and shown at their nominal size (96 CSS px per inch).
+PIXEL_RATIO = 2
+_CSS_DPI = 96
+
+
+def _figure(width_in: float, height_in: float):
+    """A figure rendered at PIXEL_RATIO x 96 dpi (shown at 96 css px per inch by :func:`_image`)."""
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width_in, height_in), dpi=_CSS_DPI * PIXEL_RATIO, layout="constrained")
+
+
+def _image(fig):
+    """An image widget showing ``fig`` at its nominal size in CSS pixels, never wider than the page."""
+    import ipywidgets as W
+
+    w = int(fig.get_figwidth() * _CSS_DPI)
+    img = W.Image(format="png", layout=W.Layout(width=f"{w}px", max_width="100%", height="auto"))
+    img.add_class("dk-figure")
+    return img
+
 
 def _agg(fig):
     from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -229,7 +251,6 @@ class SpectrumExplorer:
 
     def __init__(self, spectrum=None, lines=("H-alpha", "He I 5876", "H-beta"), observed=None, state: ExplorerState | None = None):
         import ipywidgets as W
-        from matplotlib.figure import Figure
 
         if state is None:
             state = ExplorerState.from_spectrum(spectrum, lines) if spectrum is not None else ExplorerState.synthetic(lines)
@@ -258,18 +279,17 @@ class SpectrumExplorer:
             tooltip="measure a jet pair in the observed spectrum and fit speed and angle",
         )
         self.fit_result = W.HTML()
-        self.image = W.Image(format="png")
+        # figure, created once, and the image that shows it
+        self.fig = _figure(8.0, 4.2)
+        self.image = _image(self.fig)
         for w, cls in (
             (self.speed, "dk-speed"),
             (self.speed_text, "dk-speed-text"),
             (self.angle, "dk-angle"),
             (self.readout, "dk-readout"),
-            (self.image, "dk-figure"),
             (self.fit_button, "dk-fit"),
         ):
             w.add_class(cls)
-        # figure, created once
-        self.fig = Figure(figsize=(8.0, 4.2), dpi=96, layout="constrained")
         ax0, ax1 = self.fig.subplots(2, 1, sharex=False)
         self.ax_src, self.ax_obs = ax0, ax1
         unit = u.Unit(s.axis_unit)
@@ -519,7 +539,6 @@ class ConstraintPlane:
 
     def __init__(self, state: PlaneState | None = None):
         import ipywidgets as W
-        from matplotlib.figure import Figure
 
         self.state = state or PlaneState()
         self.kind = W.Dropdown(options=list(PlaneState.KINDS), description="measurement")
@@ -529,9 +548,8 @@ class ConstraintPlane:
         self.remove_button = W.Button(description="remove", icon="minus")
         self.solve_button = W.Button(description="joint solution", icon="crosshairs")
         self.message = W.HTML()
-        self.image = W.Image(format="png")
-        self.image.add_class("dk-figure")
-        self.fig = Figure(figsize=(6.0, 4.2), dpi=96, layout="constrained")
+        self.fig = _figure(6.0, 4.2)
+        self.image = _image(self.fig)
         self.ax = self.fig.subplots()
         self.kind.observe(lambda c: setattr(self.values, "placeholder", PlaneState.KINDS[c["new"]]), "value")
         self.add_button.on_click(self._on_add)
@@ -633,7 +651,6 @@ class PrecessionExplorer:
 
     def __init__(self, state: PrecessionState):
         import ipywidgets as W
-        from matplotlib.figure import Figure
 
         self.state = s = state
         span = float(np.ptp(s.t)) or 1.0
@@ -647,30 +664,34 @@ class PrecessionExplorer:
         self.fit_button = W.Button(description="fit model", icon="crosshairs")
         self.fit_button.add_class("dk-fit")
         self.message = W.HTML()
-        self.image = W.Image(format="png")
-        self.image.add_class("dk-figure")
-        self.fig = Figure(figsize=(8.0, 5.0), dpi=96, layout="constrained")
+        self.fig = _figure(8.0, 5.0)
+        self.image = _image(self.fig)
         ax, axr = self.fig.subplots(2, 1, height_ratios=[3, 1], sharex=True)
-        ax.errorbar(s.t, s.z_1, yerr=s.z_err, fmt="o", ms=3, color=PALETTE["approaching"], label="line 1")
-        ax.errorbar(s.t, s.z_2, yerr=s.z_err, fmt="o", ms=3, color=PALETTE["receding"], label="line 2")
+        ax.errorbar(s.t, s.z_1, yerr=s.z_err, fmt="o", ms=3, color=PALETTE["approaching"], label="jet 1 (measured)")
+        ax.errorbar(s.t, s.z_2, yerr=s.z_err, fmt="o", ms=3, color=PALETTE["receding"], label="jet 2 (measured)")
         self.tt = np.linspace(s.t.min(), s.t.max(), 800)
-        (self.c1,) = ax.plot([], [], color=PALETTE["approaching"], lw=1)
-        (self.c2,) = ax.plot([], [], color=PALETTE["receding"], lw=1)
+        (self.c1,) = ax.plot([], [], color=PALETTE["approaching"], lw=1, label="jet 1 (model)")
+        (self.c2,) = ax.plot([], [], color=PALETTE["receding"], lw=1, label="jet 2 (model)")
         (self.mean,) = ax.plot([], [], color=PALETTE["neutral"], lw=0.8, ls="--", label="mean = Gamma - 1 (transverse Doppler)")
         ax.axhline(0, color="0.8", lw=0.6)
-        ax.set_ylabel("z")
-        ax.legend(fontsize=7, frameon=False, loc="upper right")
+        ax.set_ylabel("redshift z")
+        ax.legend(fontsize=7, frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0), ncols=3)  # above the data
         (self.r1,) = axr.plot([], [], "o", ms=2.5, color=PALETTE["approaching"])
         (self.r2,) = axr.plot([], [], "o", ms=2.5, color=PALETTE["receding"])
         axr.axhline(0, color="0.6", lw=0.6)
-        axr.set_ylabel("residual")
-        axr.set_xlabel("time (d)")
+        axr.set_ylabel("residual in z")
+        # a power-of-ten offset keeps the tick labels one width whatever the residuals (the layout is solved once)
+        axr.ticklabel_format(axis="y", style="sci", scilimits=(-2, 2), useMathText=True)
+        # modified Julian dates say so; other times are days from the user's own zero
+        axr.set_xlabel("time (MJD)" if float(np.nanmin(s.t)) > 30000 else "time (d)")
+        ax.tick_params(labelbottom=True)
         self.ax, self.axr = ax, axr
         for k, w in self.sliders.items():
             w.observe(lambda c, key=k: self._on_slider(key, c["new"]), "value")
         self.fit_button.on_click(self._on_fit)
         self._lim = None
         self._moving = False
+        self._fitted: dict = {}
         self.blit = _Blitter(self.fig, [self.c1, self.c2, self.mean, self.r1, self.r2])
         self.widget = W.VBox(
             [W.HBox(list(self.sliders.values())[:3]), W.HBox([*list(self.sliders.values())[3:], self.fit_button]), self.message, self.image]
@@ -681,6 +702,10 @@ class PrecessionExplorer:
     def _on_slider(self, key, value):
         if self._moving:  # the fit is moving the sliders: one redraw at the end, not five
             return
+        exact = self._fitted.get(key)
+        if exact is not None and abs(float(value) - exact) <= 0.5 * self.sliders[key].step * (1 + 1e-9):
+            return  # the slider showing a fitted value on its step grid: the model keeps the exact value
+        self._fitted.pop(key, None)
         setattr(self.state, key, float(value))
         self.update()
 
@@ -707,15 +732,22 @@ class PrecessionExplorer:
         except Exception as exc:
             self.message.value = f"<span style='color:{PALETTE['receding']}'>fit failed: {exc}</span>"
             return None
+        from ._format import with_error
+
+        self._fitted = {k: float(getattr(self.state, k)) for k in self.sliders}
         self._moving = True
         try:
             for k, w in self.sliders.items():
                 w.value = getattr(self.state, k)
         finally:
             self._moving = False
+        pm = " &plusmn; "
         self.message.value = "<br>".join(
             [
-                f"beta {f.beta:.5f} &plusmn; {f.beta_err:.5f}; inclination {f.value('inclination'):.2f} &plusmn; {f.error('inclination'):.2f} deg; cone {f.value('cone_angle'):.2f} &plusmn; {f.error('cone_angle'):.2f} deg; period {f.value('period'):.3f} &plusmn; {f.error('period'):.3f} d",
+                f"fitted (curves drawn with these exact values): beta {with_error(f.beta, f.beta_err, pm)}; "
+                f"inclination {with_error(f.value('inclination'), f.error('inclination'), pm)} deg; "
+                f"cone {with_error(f.value('cone_angle'), f.error('cone_angle'), pm)} deg; "
+                f"period {with_error(f.value('period'), f.error('period'), pm)} d; t0 {with_error(f.value('t0'), f.error('t0'), pm)}",
                 *f.notes,
             ]
         )

@@ -119,3 +119,23 @@ def test_precession_explorer_sliders_and_fit():
     f = pe._on_fit()
     assert abs(pe.sliders["period"].value - 110.0) < 0.1
     assert abs(f.beta - 0.25) < 1e-3
+
+
+def test_precession_fit_is_drawn_exactly_not_snapped_to_the_slider_steps():
+    # the browser echoes each slider value rounded to its step; the model must keep the fitted values
+    t = 60000.0 + np.linspace(0, 300, 80)
+    z1, z2 = dk.models.precessing_jet_redshifts(t, 0.24, 68 * u.deg, 23 * u.deg, 121.7037, 60012.2871)
+    err = np.full(t.size, 1e-5)
+    rng = np.random.default_rng(2)
+    st = PrecessionState(t, z1 + rng.normal(0, 1e-5, t.size), z2 + rng.normal(0, 1e-5, t.size), err, period=120, t0=60000)
+    pe = PrecessionExplorer(st)
+    f = pe._on_fit()
+    for k, w in pe.sliders.items():
+        pe._on_slider(k, round(w.value / w.step) * w.step)
+    assert st.period == f.value("period") and st.t0 == f.value("t0")
+    r1, r2 = st.residuals()
+    assert np.max(np.abs(np.concatenate([r1, r2]))) < 5e-5  # 5 sigma; snapped values gave ~6e-4
+    assert "time (MJD)" == pe.axr.get_xlabel()
+    # a real move of a slider (more than half a step) does change the model
+    pe._on_slider("period", f.value("period") + 1.0)
+    assert st.period == f.value("period") + 1.0
