@@ -297,7 +297,9 @@ class SpectrumExplorer:
         for name, r in s.lines.items():
             ax0.axvline(r, color=PALETTE["highlight"], lw=0.8, ls=":")
             ax0.text(r, 1.02, name, transform=ax0.get_xaxis_transform(), fontsize=7, ha="center", color=PALETTE["neutral"])
-        ax0.set_title("source frame", fontsize=9, loc="left")
+        ax0.set_title("source frame", fontsize=9, loc="right")
+        ax0.set_ylabel("flux density\n(relative)", fontsize=8)
+        ax1.set_ylabel("flux density\n(relative)", fontsize=8)
         (self.l_app,) = ax1.plot([], [], color=PALETTE["approaching"], lw=1, label="approaching jet")
         (self.l_rec,) = ax1.plot([], [], color=PALETTE["receding"], lw=1, ls="--", label="receding jet")
         self.l_obs = None
@@ -317,7 +319,7 @@ class SpectrumExplorer:
         ax1.set_xlim(s.axis.min() * 0.6, s.axis.max() * 1.4)
         kind = "wavelength" if unit.is_equivalent(u.m) else ("energy" if unit.is_equivalent(u.J) else "frequency")
         ax1.set_xlabel(f"observed {kind} ({unit.to_string()})")
-        ax1.set_title("observer frame", fontsize=9, loc="left")
+        ax1.set_title("observer frame", fontsize=9, loc="right")
         ax1.legend(fontsize=7, frameon=False, loc="upper right")
         self._busy = False
         self._top = None
@@ -416,11 +418,26 @@ class SpectrumExplorer:
         self.l_app.set_data(x, f)
         xr, fr = s.observed("receding")
         self.l_rec.set_data(xr, fr)
-        for n, pos in s.shifted_lines("approaching").items():
+        # the observed panel follows the shifted spectra (a full redraw only when they leave it or fill a small part)
+        lo, hi = float(np.nanmin([np.nanmin(x), np.nanmin(xr)])), float(np.nanmax([np.nanmax(x), np.nanmax(xr)]))
+        x0, x1 = self.ax_obs.get_xlim()
+        refit = not (x0 <= lo and hi <= x1 and (hi - lo) > 0.5 * (x1 - x0))
+        if refit:
+            pad = 0.03 * (hi - lo)
+            self.ax_obs.set_xlim(lo - pad, hi + pad)
+            x0, x1 = lo - pad, hi + pad
+        # line labels: staggered in height where they would overlap
+        placed = []
+        for n, pos in sorted(s.shifted_lines("approaching").items(), key=lambda kv: kv[1]):
             self.markers[n].set_xdata([pos, pos])
-            self.marker_labels[n].set_x(pos)
+            frac = (pos - x0) / (x1 - x0)
+            level = 0
+            while any(abs(frac - f0) < 0.09 and lv == level for f0, lv in placed):
+                level += 1
+            placed.append((frac, level))
+            self.marker_labels[n].set_position((pos, 1.02 + 0.09 * level))
         top = float(np.nanmax([np.nanmax(f), np.nanmax(fr), 2.0]))
-        if self._top is None or not (0.3 * self._top < top < self._top):
+        if refit or self._top is None or not (0.3 * self._top < top < self._top):
             # rescale (a full redraw) only when the curves leave the frame or shrink a lot
             self._top = 1.5 * top
             self.ax_obs.set_ylim(0, self._top)

@@ -139,3 +139,21 @@ def test_precession_fit_is_drawn_exactly_not_snapped_to_the_slider_steps():
     # a real move of a slider (more than half a step) does change the model
     pe._on_slider("period", f.value("period") + 1.0)
     assert st.period == f.value("period") + 1.0
+
+
+def test_observed_panel_follows_the_lines_and_labels_do_not_overlap():
+    ex = SpectrumExplorer()
+    ex.speed_mode.value = "gamma"
+    ex.speed.value = 5.0  # every line far from its rest place
+    ex.update()
+    x0, x1 = ex.ax_obs.get_xlim()
+    for which in ("approaching", "receding"):
+        x, _ = ex.state.observed(which)
+        assert x0 <= np.nanmin(x) and np.nanmax(x) <= x1  # nothing left the frame
+    # labels closer than 9% of the axis are on different heights
+    pos = [(t.get_position()[0], t.get_position()[1]) for t in ex.marker_labels.values()]
+    for i in range(len(pos)):
+        for j in range(i + 1, len(pos)):
+            if abs(pos[i][0] - pos[j][0]) < 0.09 * (x1 - x0):
+                assert pos[i][1] != pos[j][1]
+    assert "flux density" in ex.ax_obs.get_ylabel()
