@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["PALETTE", "plot_constraint_plane", "plot_population"]
+__all__ = ["PALETTE", "plot_constraint_plane", "plot_line_fit", "plot_population", "plot_precession_fit"]
 
 #: dopplerkit's own colours: approaching (blue-shifted) and receding (red-shifted) jets, neutral, highlight.
 PALETTE = {"approaching": "#2b6f9e", "receding": "#b5473a", "neutral": "#4d4d4d", "highlight": "#d9a21b", "band": "#8fb8a8"}
@@ -124,4 +124,132 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
     ax.set_ylim(0, 1)
     if bands or solution is not None:
         ax.legend(frameon=False, fontsize=8, loc="upper right")
+    return fig
+
+
+def plot_precession_fit(fit, *, fig=None, path=None, time_label=None):
+    """A precessing-jet fit drawn: both lines' redshifts with the model curves, and the residuals.
+
+    Parameters
+    ----------
+    fit : KinematicFit
+        From :func:`dopplerkit.fitting.fit_precessing_jet`.
+    fig : matplotlib Figure, optional
+        Drawn into (cleared); a new one otherwise.
+    path : str, optional
+        Also written there (format from the extension).
+    time_label : str, optional
+        Axis label for the times; "time (MJD)" for modified Julian dates, else "time (d)".
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.figure import Figure
+
+    from .models import precessing_jet_redshifts
+
+    d = fit.data
+    if "t" not in d:
+        raise ValueError("plot_precession_fit needs a fit from fit_precessing_jet (its data carry the times)")
+    t, z1, z2, e1, e2 = (np.asarray(d[k], float) for k in ("t", "z_1", "z_2", "z_err", "z_2_err"))
+    fig = fig or Figure(figsize=(8.0, 5.0), layout="constrained")
+    fig.clear()
+    ax, axr = fig.subplots(2, 1, height_ratios=[3, 1], sharex=True)
+    v = {k: fit.value(k) for k in ("beta", "inclination", "cone_angle", "period", "t0")}
+    zs = fit.value("z_systemic") if "z_systemic" in fit.params else 0.0
+
+    def model(tt):
+        m1, m2 = precessing_jet_redshifts(tt, v["beta"], v["inclination"], v["cone_angle"], v["period"], v["t0"])
+        return (1 + zs) * (1 + m1) - 1, (1 + zs) * (1 + m2) - 1
+
+    tt = np.linspace(t.min(), t.max(), 1500)
+    c1, c2 = model(tt)
+    ax.errorbar(t, z1, yerr=e1, fmt="o", ms=3, color=PALETTE["approaching"], label="jet 1 (measured)")
+    ax.errorbar(t, z2, yerr=e2, fmt="o", ms=3, color=PALETTE["receding"], label="jet 2 (measured)")
+    ax.plot(tt, c1, color=PALETTE["approaching"], lw=1, label="jet 1 (model)")
+    ax.plot(tt, c2, color=PALETTE["receding"], lw=1, label="jet 2 (model)")
+    ax.axhline(0, color="0.8", lw=0.6)
+    ax.set_ylabel("redshift z")
+    ax.tick_params(labelbottom=True)
+    ax.legend(fontsize=7, frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0), ncols=4)
+    m1, m2 = model(t)
+    swapped = (m1 - z2) ** 2 + (m2 - z1) ** 2 < (m1 - z1) ** 2 + (m2 - z2) ** 2
+    r1 = np.where(swapped, z1 - m2, z1 - m1)
+    r2 = np.where(swapped, z2 - m1, z2 - m2)
+    axr.errorbar(t, r1 / e1, fmt="o", ms=2.5, color=PALETTE["approaching"])
+    axr.errorbar(t, r2 / e2, fmt="o", ms=2.5, color=PALETTE["receding"])
+    axr.axhline(0, color="0.6", lw=0.6)
+    axr.set_ylabel("residual / error")
+    axr.set_xlabel(time_label or ("time (MJD)" if float(np.nanmin(t)) > 30000 else "time (d)"))
+    if path:
+        fig.savefig(path, dpi=150)
+    return fig
+
+
+def plot_line_fit(spectrum, table, *, fig=None, path=None, pad_kms: float = 4000.0):
+    """A ``measure_lines`` result drawn over its spectrum: data, fitted lines, residuals.
+
+    The model shown is rebuilt from the table (each component a Gaussian of the fitted centre,
+    FWHM and flux) on a local cubic continuum fitted to the data around the lines: the picture of
+    the fit, not a refit of it.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        The spectrum that was measured (with its uncertainty).
+    table : astropy QTable
+        Its :func:`dopplerkit.measure.measure_lines` table.
+    fig, path
+        As in :func:`plot_precession_fit`.
+    pad_kms : float
+        Shown range beyond the outermost components, in km/s.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.figure import Figure
+
+    c_kms = 299792.458
+    x = np.asarray(spectrum.spectral_axis.value, float)
+    y = np.asarray(spectrum.flux.value, float)
+    sig = np.asarray(spectrum.uncertainty.array, float) if spectrum.uncertainty is not None else np.ones_like(y)
+    mu = np.asarray([getattr(v, "value", v) for v in table["centre"]], float)
+    fw = np.asarray([getattr(v, "value", v) for v in table["fwhm"]], float) * np.abs(mu) / c_kms
+    area = np.asarray([getattr(v, "value", v) for v in table["flux"]], float)
+    lo, hi = np.nanmin(mu) * (1 - pad_kms / c_kms), np.nanmax(mu) * (1 + pad_kms / c_kms)
+    m = (x >= min(lo, hi)) & (x <= max(lo, hi)) & np.isfinite(y) & np.isfinite(sig) & (sig > 0)
+    xs, ys, ss = x[m], y[m], sig[m]
+    g = np.zeros_like(xs)
+    comps = []
+    for c, w, a in zip(mu, fw, area, strict=True):
+        s_ = w / 2.3548200450309493
+        prof = a * np.exp(-0.5 * ((xs - c) / s_) ** 2) / (s_ * np.sqrt(2 * np.pi))
+        comps.append(prof)
+        g += prof
+    tx = (xs - xs.mean()) / (np.ptp(xs) / 2 or 1.0)
+    A = np.vander(tx, 4) / ss[:, None]
+    coef = np.linalg.lstsq(A, (ys - g) / ss, rcond=None)[0]
+    cont = np.vander(tx, 4) @ coef
+    fig = fig or Figure(figsize=(8.0, 4.6), layout="constrained")
+    fig.clear()
+    ax, axr = fig.subplots(2, 1, height_ratios=[3, 1], sharex=True)
+    ax.plot(xs, ys, color=PALETTE["neutral"], lw=0.8, label="data")
+    ax.plot(xs, cont + g, color="k", lw=1.2, label="fitted lines + local continuum")
+    for prof, (line, comp, st) in zip(comps, zip(table["line"], table["component"], table["status"], strict=True), strict=True):
+        colour = PALETTE["receding"] if str(comp) == "receding" else PALETTE["approaching"]
+        ax.plot(xs, cont + prof, color=colour, lw=0.9, ls="-" if st == "ok" else ":", label=f"{line} {comp} ({st})")
+    unit = spectrum.spectral_axis.unit
+    funit = spectrum.flux.unit
+    ax.set_ylabel(f"flux density ({funit.to_string()})" if funit.to_string() else "flux density")
+    ax.tick_params(labelbottom=True)
+    ax.legend(fontsize=7, frameon=False, loc="lower left", bbox_to_anchor=(0.1, 1.0), ncols=2)  # clear of the offset text
+    axr.plot(xs, (ys - cont - g) / ss, ".", ms=2, color=PALETTE["neutral"])
+    axr.axhline(0, color="0.6", lw=0.6)
+    axr.set_ylabel("residual / error")
+    kind = "wavelength" if unit.physical_type == "length" else ("energy" if unit.physical_type == "energy" else "frequency")
+    axr.set_xlabel(f"{kind} ({unit.to_string()})")
+    if path:
+        fig.savefig(path, dpi=150)
     return fig
