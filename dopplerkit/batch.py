@@ -351,13 +351,13 @@ def _is_spectrum_name(rel: str, pattern: str | None) -> bool:
     return name.lower().endswith(SPECTRUM_EXTENSIONS)
 
 
-def _formats(paths: list[Path]) -> list[str | None]:
+def _formats(paths) -> list[str | None]:
     """Format per file, detected once per (directory, extension)."""
     from .io import SpectrumReadError, detect_format
 
     cache: dict = {}
     fmts = []
-    for p in paths:
+    for p in map(Path, paths):
         key = (p.parent, "".join(p.suffixes[-2:]).lower() if p.name.lower().endswith(".gz") else p.suffix.lower())
         if key not in cache:
             try:
@@ -634,9 +634,9 @@ def _read_previous(output: Path, config_hash: str) -> dict:
     return rows
 
 
-def _stamp(path: Path) -> tuple[int, int]:
+def _stamp(path) -> tuple[int, int]:
     """(size in bytes, modification time in ns) of an input file: what --resume compares."""
-    st = path.stat()
+    st = os.stat(path)
     return int(st.st_size), int(st.st_mtime_ns)
 
 
@@ -945,18 +945,12 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
     journal = _journal_path(output)
     if not resume and journal.exists():
         journal.unlink()  # ours (the lock is held): a fresh run starts a fresh journal
-    keep = {str(p): previous[str(p)] for p in paths if str(p) in previous and _still_valid(previous[str(p)], p)}
-    todo = [p for p in paths if str(p) not in keep]
+    paths = [str(p) for p in paths]  # plain strings from here on: the per-file bookkeeping stays small
+    keep = {p: previous[p] for p in paths if p in previous and _still_valid(previous[p], p)}
+    todo = [p for p in paths if p not in keep]
     fmts = _formats(todo)
     cfgd = cfg.as_dict()
-    chunks = [(list(map(str, todo[i : i + chunk_size])), fmts[i : i + chunk_size]) for i in range(0, len(todo), chunk_size)]
-    stamps = {}
-    for p in todo:
-        try:
-            stamps[str(p)] = _stamp(p)
-        except OSError:
-            stamps[str(p)] = (-1, -1)
-    done: set = set(keep)
+    chunks = [(todo[i : i + chunk_size], fmts[i : i + chunk_size]) for i in range(0, len(todo), chunk_size)]
     t_start = time.perf_counter()
     n_new = 0
     pool = None
@@ -983,10 +977,13 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             def record(chunk_rows):
                 nonlocal n_new
                 for r in chunk_rows:
-                    r["file_size"], r["file_mtime_ns"] = stamps.get(r["file"], (-1, -1))
+                    # size and time now, beside the hash of the bytes fitted: a file changed meanwhile is refitted on --resume
+                    try:
+                        r["file_size"], r["file_mtime_ns"] = _stamp(r["file"])
+                    except OSError:
+                        r["file_size"], r["file_mtime_ns"] = -1, -1
                     r["config_hash"] = h
                     r["dopplerkit_version"] = __version__
-                    done.add(r["file"])  # the row itself lives in the journal only (memory stays flat)
                     jf.write(json.dumps(r, default=float, allow_nan=True) + "\n")
                 jf.flush()
                 os.fsync(jf.fileno())
@@ -1011,7 +1008,7 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             bar.close()
     if code is not None:
         return code, None
-    table, counts = _write_results(journal, paths, keep, h, done, output)
+    table, counts = _write_results(journal, paths, keep, h, output)
     journal.unlink(missing_ok=True)
     n_ok, n_err = counts.get("ok", 0), counts.get("error", 0)
     n_rows = sum(counts.values())
@@ -1038,7 +1035,7 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
 STREAM_ROWS = 20000
 
 
-def _write_results(journal: Path, paths, keep: dict, config_hash: str, done: set, output: Path):
+def _write_results(journal: Path, paths, keep: dict, config_hash: str, output: Path):
     """Write the result table in input order: rows kept from before, this run's rows from the journal.
 
     One pass over the journal notes where each file's last row starts; rows are then read back
@@ -1048,7 +1045,7 @@ def _write_results(journal: Path, paths, keep: dict, config_hash: str, done: set
 
     from .io import write_table, write_table_blocks
 
-    files = [str(p) for p in paths if str(p) in done]
+    files = [str(p) for p in paths]  # every input has a row by now (a fit, an error, a dead worker's note)
     position = {f: i for i, f in enumerate(files)}
     n = len(files)
     offsets = np.full(n, -1, dtype=np.int64)
@@ -1085,8 +1082,10 @@ def _write_results(journal: Path, paths, keep: dict, config_hash: str, done: set
                 if offsets[i] >= 0:
                     fh.seek(int(offsets[i]))
                     yield i - a, json.loads(fh.readline())
-                else:
+                elif files[i] in keep:
                     yield i - a, keep[files[i]]
+                else:  # pragma: no cover - every finished run records a row per input
+                    yield i - a, {"file": files[i], "status": "error", "message": "no result was recorded for this file"}
 
     counts: Counter = Counter()
     if output.suffix.lower() in (".ecsv", ".csv") and n > STREAM_ROWS:
