@@ -100,30 +100,43 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
     for k, band in enumerate(bands):
         c2 = band["chi2"](B, T)
         col = colours[k % len(colours)]
-        if np.nanmin(c2) <= 1:
-            ax.contourf(T, B, c2, levels=[-1, 1], colors=[col], alpha=0.35)
-            ax.contour(T, B, c2, levels=[4], colors=[col], linewidths=0.8)
-        else:  # narrower than the grid (an exactly determined pair): mark its best point instead
+        # bands above the solution's marker (zorder), so a narrow band is never hidden under it
+        inside = int(np.sum(c2 <= 1))
+        if inside:
+            ax.contourf(T, B, c2, levels=[-1, 1], colors=[col], alpha=0.35, zorder=3)
+            ax.contour(T, B, c2, levels=[4], colors=[col], linewidths=0.8, zorder=3)
+        if inside < 20:  # (nearly) narrower than the grid, e.g. an exactly determined pair: mark its best point too
             i = np.unravel_index(np.nanargmin(c2), c2.shape)
-            ax.plot(T[i], B[i], "D", ms=6, mfc="none", mec=col)
+            ax.plot(T[i], B[i], "D", ms=7, mew=1.5, mfc="none", mec=col, zorder=4)
         ax.plot([], [], color=col, lw=6, alpha=0.5, label=band.get("label", f"measurement {k + 1}"))
     if solution is not None:
+        from ._format import with_error
+
+        r = solution.result
+        tension = f"chi2 {r.chisqr:.3g} for {r.nfree} dof" + (f", p = {solution.p_value:.2g}" if r.nfree > 0 else " (exactly determined)")
+        label = (
+            f"joint: beta {with_error(solution.beta, solution.beta_err)},\n"
+            f"angle {with_error(solution.value('viewing_angle'), solution.error('viewing_angle'))} deg; {tension}"
+        )
         ax.errorbar(
             solution.value("viewing_angle"),
             solution.beta,
             xerr=solution.error("viewing_angle"),
             yerr=solution.beta_err,
-            fmt="*",
-            ms=10,
+            fmt="o",
+            ms=9,
+            mfc="none",
+            mec="k",
             color="k",
-            label="joint solution",
+            zorder=2,
+            label=label,
         )
     ax.set_xlabel("viewing angle (deg, 0 = towards us)")
     ax.set_ylabel(r"$\beta = v/c$")
     ax.set_xlim(0, 180)
     ax.set_ylim(0, 1)
     if bands or solution is not None:
-        ax.legend(frameon=False, fontsize=8, loc="upper right")
+        ax.legend(frameon=True, framealpha=0.85, fontsize=7, loc="best")
     return fig
 
 
