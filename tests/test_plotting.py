@@ -40,3 +40,24 @@ def test_precession_fit_figure(tmp_path):
     assert [t.get_text() for t in ax.get_legend().get_texts()][:2] == ["jet 1 (model)", "jet 2 (model)"]
     with pytest.raises(ValueError, match="fit_precessing_jet"):
         plot_precession_fit(dk.fitting.fit_jet_pair(-0.1, 0.16, 1e-4, 1e-4))
+
+
+def test_constraint_plane_shows_the_solution_and_its_tension():
+    import warnings as w
+
+    from dopplerkit.widgets import PlaneState
+
+    st = PlaneState()
+    st.add("z pair", [-0.1045, 0.1648, 0.0005])
+    st.add("flux ratio", [3.0, 0.5, 0.6])
+    with w.catch_warnings():
+        w.simplefilter("ignore")
+        st.solve()
+    from dopplerkit.plotting import plot_constraint_plane
+
+    fig = plot_constraint_plane([{"label": st.label(m), "chi2": st.chi2(m)} for m in st.measurements], solution=st.solution)
+    texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert any("joint: beta" in t and "chi2" in t and "dof" in t for t in texts)
+    # the exactly determined pair is drawn (its best grid point marked), above the solution's marker
+    markers = [ln for ln in fig.axes[0].get_lines() if ln.get_marker() == "D"]
+    assert markers and markers[0].get_zorder() > 2
