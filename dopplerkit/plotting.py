@@ -227,7 +227,10 @@ def plot_line_fit(spectrum, table, *, fig=None, path=None, pad_kms: float = 4000
     c_kms = 299792.458
     x = np.asarray(spectrum.spectral_axis.value, float)
     y = np.asarray(spectrum.flux.value, float)
-    sig = np.asarray(spectrum.uncertainty.array, float) if spectrum.uncertainty is not None else np.ones_like(y)
+    from .measure import spectrum_sigma
+
+    sig = spectrum_sigma(spectrum)  # any uncertainty type (standard deviation, variance, inverse variance)
+    sig = np.ones_like(y) if sig is None else np.asarray(sig, float)
     mu = np.asarray([getattr(v, "value", v) for v in table["centre"]], float)
     fw = np.asarray([getattr(v, "value", v) for v in table["fwhm"]], float) * np.abs(mu) / c_kms
     area = np.asarray([getattr(v, "value", v) for v in table["flux"]], float)
