@@ -684,21 +684,35 @@ def write_table_blocks(blocks, path: str | Path) -> Path:
     fmt = TABLE_FORMATS.get(path.suffix.lower())
     if fmt not in ("ascii.ecsv", "ascii.csv"):
         raise ValueError(f"block-wise writing is for .ecsv and .csv tables, got {path.suffix!r}")
+    sep = " " if fmt == "ascii.ecsv" else ","
     with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8", newline="") as fh:
         names = None
         for t in blocks:
-            buf = _io.StringIO()
-            t.write(buf, format=fmt)
-            lines = buf.getvalue().splitlines(keepends=True)
-            if names is None:
+            if names is None:  # the header (and the first block) by astropy's writer
+                buf = _io.StringIO()
+                t.write(buf, format=fmt)
+                fh.write(buf.getvalue())
                 names = t.colnames
-                fh.writelines(lines)
                 continue
             if t.colnames != names:
                 raise ValueError("every block must have the same columns")
-            body = [ln for ln in lines if not ln.startswith("#")]
-            fh.writelines(body[1:])  # the line of column names is already there
+            # later blocks: data lines as astropy writes them (calling its writer per block holds memory)
+            cols = [np.asarray(t[c]) for c in names]
+            for i in range(len(t)):
+                fh.write(sep.join(_text_cell(col[i], sep) for col in cols) + "\n")
     return path
+
+
+def _text_cell(v, sep: str) -> str:
+    """One cell of an ECSV/CSV data line: floats in their shortest exact form, text quoted when needed."""
+    if isinstance(v, (str, np.str_)):
+        v = str(v)
+        if v == "" or sep in v or '"' in v or " " in v or "," in v or "\n" in v:
+            return '"' + v.replace('"', '""') + '"'
+        return v
+    if isinstance(v, (float, np.floating)):
+        return repr(float(v))
+    return str(v)
 
 
 def _utf8_text_columns(table):
