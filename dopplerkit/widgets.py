@@ -190,6 +190,33 @@ class ExplorerState:
         else:
             self.beta = float(value)
 
+    def parameters(self) -> dict:
+        """The explored scenario as plain numbers (speed v/c, viewing angle in deg: 0 = towards us)."""
+        return {
+            "beta": float(self.beta),
+            "gamma": float(self.gamma),
+            "viewing_angle": float(self.angle_deg),
+            "beaming": self.beaming,
+            "alpha": float(self.alpha),
+            "z_cosmo": float(self.z_cosmo),
+            "opening_angle": float(self.opening_deg),
+        }
+
+    def snippet(self) -> str:
+        """Python lines that reproduce this scenario with the library (to paste into a notebook or script)."""
+        p = self.parameters()
+        geometry = p["beaming"] or "blob"
+        return "\n".join(
+            [
+                "import dopplerkit as dk",
+                f"params = {p!r}  # angles in deg (0 = moving straight at us)",
+                'delta = dk.doppler_factor(params["beta"], params["viewing_angle"])',
+                'z_jet, z_counterjet = dk.redshift(params["beta"], params["viewing_angle"]), dk.redshift(params["beta"], 180 - params["viewing_angle"])',
+                'z_total = dk.compose_redshift(params["z_cosmo"], z_jet)',
+                f'boost = dk.beaming_factor(params["beta"], params["viewing_angle"], params["alpha"], geometry="{geometry}")',
+            ]
+        )
+
     def readouts(self) -> dict:
         """Gamma, delta, z (kinematic and total), apparent speed and boosts of the approaching jet."""
         th = self.angle_deg * u.deg
@@ -279,6 +306,10 @@ class SpectrumExplorer:
             tooltip="measure a jet pair in the observed spectrum and fit speed and angle",
         )
         self.fit_result = W.HTML()
+        self.reset_button = W.Button(description="reset", icon="undo", tooltip="back to the starting scenario")
+        self.copy_button = W.Button(description="copy parameters", icon="clipboard", tooltip="show Python lines for this scenario")
+        self.snippet = W.Textarea(layout=W.Layout(width="100%", height="8em", display="none"))
+        self._initial = {k: getattr(s, k) for k in ("beta", "angle_deg", "beaming", "z_cosmo", "opening_deg", "speed_mode")}
         # figure, created once, and the image that shows it
         self.fig = _figure(8.0, 4.2)
         self.image = _image(self.fig)
@@ -333,6 +364,8 @@ class SpectrumExplorer:
         self.z_cosmo.observe(self._on_change, "value")
         self.opening.observe(self._on_change, "value")
         self.fit_button.on_click(self._on_fit)
+        self.reset_button.on_click(self._on_reset)
+        self.copy_button.on_click(self._on_copy)
         self.widget = W.VBox(
             [
                 W.HBox([self.speed_mode]),
@@ -341,7 +374,8 @@ class SpectrumExplorer:
                 W.HBox([self.z_cosmo, self.opening]),
                 self.readout,
                 self.image,
-                W.HBox([self.fit_button, self.fit_result]),
+                W.HBox([self.fit_button, self.reset_button, self.copy_button, self.fit_result]),
+                self.snippet,
             ]
         )
         self.widget.add_class("dk-explorer")
@@ -354,6 +388,22 @@ class SpectrumExplorer:
         s.beaming = BEAMING_CHOICES[self.beaming.value]
         s.z_cosmo = float(self.z_cosmo.value)
         s.opening_deg = float(self.opening.value)
+
+    def _on_reset(self, _button=None):
+        """Every control back to the starting scenario."""
+        init = self._initial
+        self.speed_mode.value = "beta"
+        self.beaming.value = next(k for k, v in BEAMING_CHOICES.items() if v == init["beaming"])
+        self.z_cosmo.value = init["z_cosmo"]
+        self.opening.value = init["opening_deg"]
+        self.angle.value = init["angle_deg"]
+        self.speed.value = init["beta"]
+        self.update()
+
+    def _on_copy(self, _button=None):
+        """Show the scenario as Python lines, selected, ready to copy."""
+        self.snippet.value = self.state.snippet()
+        self.snippet.layout.display = None
 
     def _on_mode(self, change):
         s = self.state

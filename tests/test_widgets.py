@@ -157,3 +157,17 @@ def test_observed_panel_follows_the_lines_and_labels_do_not_overlap():
             if abs(pos[i][0] - pos[j][0]) < 0.09 * (x1 - x0):
                 assert pos[i][1] != pos[j][1]
     assert "flux density" in ex.ax_obs.get_ylabel()
+
+
+def test_copy_parameters_reproduces_the_readouts_and_reset_restores():
+    ex = SpectrumExplorer()
+    ex.speed.value, ex.angle.value, ex.beaming.value, ex.z_cosmo.value = 0.6, 30.0, "blob", 0.5
+    ex._on_copy()
+    ns: dict = {}
+    exec(ex.snippet.value, ns)  # the pasted lines give what the explorer shows
+    r = ex.state.readouts()
+    assert_allclose(ns["delta"], r["delta"], rtol=1e-12)
+    assert_allclose(ns["z_total"], r["z_total"], rtol=1e-12)
+    assert_allclose(ns["boost"], r["boost"], rtol=1e-12)
+    ex._on_reset()
+    assert (ex.state.beta, ex.state.angle_deg, ex.state.beaming, ex.state.z_cosmo) == (0.24, 57.0, None, 0.0)
