@@ -377,7 +377,7 @@ def _find_host(setup: FitSetup, x, y, sig):
     rest = np.array([r for _, r in setup.host])
     names = [n for n, _ in setup.host]
     z = setup.host_z
-    mu0 = rest * (1 + z) if setup.wavelike else rest / (1 + z)
+    mu0 = _position(setup, rest, z)
     inside = (mu0 > x[0]) & (mu0 < x[-1])
     if not inside.any():
         return None
@@ -444,7 +444,7 @@ def _begin(setup: FitSetup, x, y, sig, window, window_kms):
     keep = _window_mask(setup, x, starts, window, window_kms)
     xk = x[keep]
     z = setup.host_z
-    mus = [r * (1 + z) if setup.wavelike else r / (1 + z) for _, r in setup.host]
+    mus = [_position(setup, r, z) for _, r in setup.host]
     if not any(np.any(np.abs(xk - m) < abs(m) * HOST_FWHM_RANGE[1] / C_KMS) for m in mus):
         return starts, cont, None
     host = _find_host(setup, x, y, sig)
@@ -522,7 +522,7 @@ def _nuisance(setup, comps, xw):
         for name, rest, _q in setup.same_gas:
             if np.any(np.abs(configured - rest) <= 1e-6 * rest):
                 continue
-            mu = rest * (1 + z) if setup.wavelike else rest / (1 + z)
+            mu = _position(setup, rest, z)
             fw = abs(mu) * w / C_KMS
             if not (np.isfinite(fw) and fw > 0) or np.count_nonzero(np.abs(xw - mu) < fw) < 3:
                 continue
@@ -1162,8 +1162,7 @@ def _profile_columns(setup, x, comps):
         for _ in range(setup.components):
             z, w = next(it)
             for lidx in grp:
-                r = setup.rest[lidx]
-                mu = r * (1 + z) if setup.wavelike else r / (1 + z)
+                mu = _position(setup, setup.rest[lidx], z)
                 sg = abs(mu) * w / (C_KMS * _FWHM_GAUSS)
                 cols.append(np.exp(-0.5 * ((x - mu) / sg) ** 2) / (sg * np.sqrt(2 * np.pi)))
     return np.column_stack(cols) if cols else np.zeros((x.size, 0))

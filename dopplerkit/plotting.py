@@ -224,7 +224,8 @@ def plot_line_fit(spectrum, table, *, fig=None, path=None, pad_kms: float = 4000
     """
     from matplotlib.figure import Figure
 
-    c_kms = 299792.458
+    from .kinematics import SPEED_OF_LIGHT_KMS as c_kms
+
     x = np.asarray(spectrum.spectral_axis.value, float)
     y = np.asarray(spectrum.flux.value, float)
     from .measure import spectrum_sigma
