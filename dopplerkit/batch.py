@@ -333,14 +333,33 @@ def slug(text: str) -> str:
 # ---------------------------------------------------------------------------
 def find_spectra(directory: str | Path, pattern: str | None = None) -> list[Path]:
     """Every spectrum file under ``directory`` (recursive), sorted; ``pattern`` is a glob on the relative path or name."""
-    d = Path(directory)
-    out = []
-    for p in sorted(d.rglob("*")):
-        if not p.is_file() or p.name.startswith("."):
-            continue
-        if _is_spectrum_name(p.relative_to(d).as_posix(), pattern):
-            out.append(p)
-    return out
+    return [Path(p) for p in _walk_spectra(str(directory), pattern)]
+
+
+def _walk_spectra(directory: str, pattern: str | None = None):
+    """The files :func:`find_spectra` finds, as plain strings, in the same order.
+
+    Entries of a directory are taken in name order, descending into a sub-directory where its
+    name falls (the order of sorting whole paths part by part); symbolic links to files are
+    followed, to directories not; hidden files are skipped. Strings, not Path objects: a run over
+    100,000 files keeps ~100 bytes per file instead of ~600.
+    """
+    root = directory.rstrip(os.sep) or os.sep
+    cut = len(root) + 1
+
+    def walk(d):
+        try:
+            with os.scandir(d) as it:
+                entries = sorted(it, key=lambda e: e.name)
+        except OSError:
+            return
+        for e in entries:
+            if e.is_dir(follow_symlinks=False):
+                yield from walk(e.path)
+            elif not e.name.startswith(".") and e.is_file() and _is_spectrum_name(e.path[cut:].replace(os.sep, "/"), pattern):
+                yield e.path
+
+    yield from walk(root)
 
 
 def _is_spectrum_name(rel: str, pattern: str | None) -> bool:
@@ -678,14 +697,30 @@ def _written_by_us(path: Path) -> bool:
         return False
 
 
-def _check_output(output: Path, spectra_dir: Path, paths: list[Path], pattern: str | None, overwrite: bool) -> None:
+def _same_file_among(target: Path, paths) -> bool:
+    """Is the existing file ``target`` one of ``paths`` (same device and inode, so links count)?"""
+    try:
+        st = os.stat(target)
+    except OSError:
+        return False  # does not exist (yet): it cannot be an input
+    key = (st.st_dev, st.st_ino)
+    for p in paths:
+        try:
+            s = os.stat(p)
+        except OSError:
+            continue
+        if (s.st_dev, s.st_ino) == key:
+            return True
+    return False
+
+
+def _check_output(output: Path, spectra_dir: Path, paths, pattern: str | None, overwrite: bool) -> None:
     """Refuse an output that would destroy data (ConfigError, exit code 2)."""
     target = output.resolve()
-    inputs = {p.resolve() for p in paths}
-    for extra in (_journal_path(output).resolve(), _lock_path(output).resolve()):
-        if extra in inputs:
-            raise ConfigError(f"--output {str(output)!r}: its journal or lock file {str(extra)!r} is one of the input spectra")
-    if target in inputs:
+    for extra in (_journal_path(output), _lock_path(output)):
+        if _same_file_among(extra, paths):
+            raise ConfigError(f"--output {str(output)!r}: its journal or lock file {str(extra.resolve())!r} is one of the input spectra")
+    if _same_file_among(output, paths):
         raise ConfigError(f"--output {str(output)!r} is one of the input spectra; it would be replaced by the results table")
     root = spectra_dir.resolve()
     if target.is_relative_to(root):
@@ -923,7 +958,7 @@ def run_batch(
         raise ConfigError(f"--workers must be >= 1, got {workers}")
     if not cluster_timeout > 0:
         raise ConfigError(f"--cluster-timeout must be > 0 seconds, got {cluster_timeout}")
-    paths = find_spectra(d, pattern)
+    paths = list(_walk_spectra(str(d), pattern))  # strings: the per-file bookkeeping stays small
     if not paths:
         raise ConfigError(
             f"no spectra found under {str(d)!r}"
@@ -945,7 +980,6 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
     journal = _journal_path(output)
     if not resume and journal.exists():
         journal.unlink()  # ours (the lock is held): a fresh run starts a fresh journal
-    paths = [str(p) for p in paths]  # plain strings from here on: the per-file bookkeeping stays small
     keep = {p: previous[p] for p in paths if p in previous and _still_valid(previous[p], p)}
     todo = [p for p in paths if p not in keep]
     fmts = _formats(todo)
@@ -1045,7 +1079,7 @@ def _write_results(journal: Path, paths, keep: dict, config_hash: str, output: P
 
     from .io import write_table, write_table_blocks
 
-    files = [str(p) for p in paths]  # every input has a row by now (a fit, an error, a dead worker's note)
+    files = paths  # every input has a row by now (a fit, an error, a dead worker's note)
     position = {f: i for i, f in enumerate(files)}
     n = len(files)
     offsets = np.full(n, -1, dtype=np.int64)

@@ -408,6 +408,35 @@ def test_output_over_an_input_is_refused(small, capsys):
     assert victim.read_bytes() == before
 
 
+def test_output_linked_to_an_input_is_refused(small, tmp_path, capsys):
+    # a symbolic link and a hard link outside SPECTRA_DIR that name an input file
+    victim = small["dir"] / "é1.fits"
+    before = victim.read_bytes()
+    (tmp_path / "soft.fits").symlink_to(victim)
+    os.link(victim, tmp_path / "hard.fits")
+    for name in ("soft.fits", "hard.fits"):
+        assert _run(small, tmp_path / name, "--overwrite") == 2
+        assert "is one of the input spectra" in capsys.readouterr().err
+    assert victim.read_bytes() == before
+
+
+def test_file_search_order_and_rules(tmp_path):
+    # the string walk keeps the order of sorting whole paths part by part (pathlib's), skips
+    # hidden files, follows links to files but not to directories (common practice, no source)
+    from dopplerkit.batch import _walk_spectra, find_spectra
+
+    names = ["a.fits", "a-b/x.fits", "a/x.fits", "a/b/y.fits", "a.b/z.fits", "B.fits", "c/.hidden.fits", ".h/v.fits", "c/notes.md"]
+    for n in names:
+        (tmp_path / n).parent.mkdir(parents=True, exist_ok=True)
+        (tmp_path / n).write_bytes(b"")
+    (tmp_path / "c" / "link.fits").symlink_to(tmp_path / "a.fits")
+    (tmp_path / "dirlink").symlink_to(tmp_path / "a", target_is_directory=True)
+    expected = sorted(p for p in tmp_path.rglob("*") if p.is_file() and not p.name.startswith(".") and p.suffix == ".fits")
+    assert find_spectra(tmp_path) == expected
+    assert list(_walk_spectra(str(tmp_path))) == [str(p) for p in expected]
+    assert [p.name for p in find_spectra(tmp_path, "a/*")] == ["y.fits", "x.fits"]
+
+
 def test_output_that_the_next_run_would_read_is_refused(small, capsys):
     assert _run(small, small["dir"] / "results.ecsv") == 2
     assert "next run would read the results as a spectrum" in capsys.readouterr().err
