@@ -291,20 +291,24 @@ class SpectrumExplorer:
         self.speed = W.FloatSlider(
             value=s.beta, min=0.0, max=0.995, step=0.001, description="beta", readout_format=".3f", continuous_update=True
         )
-        self.speed_text = W.BoundedFloatText(
-            value=s.beta, min=0.0, max=0.995, step=0.001, description="exact", layout=W.Layout(width="170px")
-        )
+        # exact entry: any value the mode allows; a refused or off-slider value is explained in speed_note
+        self.speed_text = W.FloatText(value=s.beta, step=0.001, description="exact", layout=W.Layout(width="170px"))
+        self.speed_note = W.HTML()
         self.angle = W.FloatSlider(value=s.angle_deg, min=0.0, max=180.0, step=0.5, description="angle (deg)", readout_format=".1f")
         self.beaming = W.ToggleButtons(options=list(BEAMING_CHOICES), value="none", description="beaming")
         self.z_cosmo = W.FloatSlider(value=s.z_cosmo, min=0.0, max=3.0, step=0.01, description="host z")
         self.opening = W.FloatSlider(value=s.opening_deg, min=0.0, max=30.0, step=0.5, description="cone (deg)")
+        self.hold = W.Checkbox(value=False, description="hold range", indent=False, layout=W.Layout(width="110px"))
+        self.flux_scale = W.ToggleButtons(options=["linear", "log"], value="linear", description="flux scale")
+        self.range_note = W.HTML()
         self.readout = W.HTML()
         self.fit_button = W.Button(
             description="fit observed",
             icon="crosshairs",
-            disabled=observed is None,
-            tooltip="measure a jet pair in the observed spectrum and fit speed and angle",
+            tooltip=f"measure a jet pair of {next(iter(s.lines))} in the observed spectrum and fit speed and angle",
         )
+        if observed is None:  # nothing to fit: no button (rather than a grey one)
+            self.fit_button.layout.display = "none"
         self.fit_result = W.HTML()
         self.reset_button = W.Button(description="reset", icon="undo", tooltip="back to the starting scenario")
         self.copy_button = W.Button(description="copy parameters", icon="clipboard", tooltip="show Python lines for this scenario")
@@ -319,6 +323,10 @@ class SpectrumExplorer:
             (self.angle, "dk-angle"),
             (self.readout, "dk-readout"),
             (self.fit_button, "dk-fit"),
+            (self.speed_note, "dk-speed-note"),
+            (self.range_note, "dk-range-note"),
+            (self.hold, "dk-hold"),
+            (self.flux_scale, "dk-flux-scale"),
         ):
             w.add_class(cls)
         ax0, ax1 = self.fig.subplots(2, 1, sharex=False)
@@ -349,6 +357,7 @@ class SpectrumExplorer:
         }
         ax1.set_xlim(s.axis.min() * 0.6, s.axis.max() * 1.4)
         kind = "wavelength" if unit.is_equivalent(u.m) else ("energy" if unit.is_equivalent(u.J) else "frequency")
+        ax0.set_xlabel(f"{kind} in the gas's frame ({unit.to_string()})", fontsize=8)
         ax1.set_xlabel(f"observed {kind} ({unit.to_string()})")
         ax1.set_title("observer frame", fontsize=9, loc="right")
         ax1.legend(fontsize=7, frameon=False, loc="upper right")
@@ -363,17 +372,21 @@ class SpectrumExplorer:
         self.beaming.observe(self._on_change, "value")
         self.z_cosmo.observe(self._on_change, "value")
         self.opening.observe(self._on_change, "value")
+        self.hold.observe(self._on_change, "value")
+        self.flux_scale.observe(self._on_scale, "value")
         self.fit_button.on_click(self._on_fit)
         self.reset_button.on_click(self._on_reset)
         self.copy_button.on_click(self._on_copy)
         self.widget = W.VBox(
             [
                 W.HBox([self.speed_mode]),
-                W.HBox([self.speed, self.speed_text]),
+                W.HBox([self.speed, self.speed_text, self.speed_note]),
                 W.HBox([self.angle, self.beaming]),
                 W.HBox([self.z_cosmo, self.opening]),
+                W.HBox([self.flux_scale, self.hold]),
                 self.readout,
                 self.image,
+                self.range_note,
                 W.HBox([self.fit_button, self.reset_button, self.copy_button, self.fit_result]),
                 self.snippet,
             ]
@@ -393,6 +406,8 @@ class SpectrumExplorer:
         """Every control back to the starting scenario."""
         init = self._initial
         self.speed_mode.value = "beta"
+        self.hold.value = False
+        self.flux_scale.value = "linear"
         self.beaming.value = next(k for k, v in BEAMING_CHOICES.items() if v == init["beaming"])
         self.z_cosmo.value = init["z_cosmo"]
         self.opening.value = init["opening_deg"]
@@ -414,12 +429,10 @@ class SpectrumExplorer:
             if s.speed_mode == "gamma":
                 self.speed.description = "Lorentz factor"
                 self.speed.max, self.speed.min, self.speed.step = 10.0, 1.0, 0.001
-                self.speed_text.max, self.speed_text.min = 1e6, 1.0
                 v = s.gamma
             else:
                 self.speed.description = "beta"
                 self.speed.min, self.speed.max, self.speed.step = 0.0, 0.995, 0.001
-                self.speed_text.min, self.speed_text.max = 0.0, 0.999999
                 v = s.beta
             self.speed.value = min(max(v, self.speed.min), self.speed.max)
             self.speed_text.value = v
@@ -434,15 +447,42 @@ class SpectrumExplorer:
         self._busy = True
         self.speed_text.value = change["new"]
         self._busy = False
+        self.speed_note.value = ""
         self.update()
+
+    def speed_limits(self) -> tuple[float, float, str]:
+        """(lowest, highest allowed, rule) for an exact speed in the current mode."""
+        if self.state.speed_mode == "gamma":
+            return 1.0, np.inf, "a Lorentz factor must be >= 1"
+        return 0.0, 1.0, "beta must be in [0, 1)"
 
     def _on_speed_text(self, change):
         if self._busy:
             return
-        self.state.set_speed(change["new"])
+        v = change["new"]
+        lo, hi, rule = self.speed_limits()
+        mode = "Lorentz factor" if self.state.speed_mode == "gamma" else "beta"
+        current = self.state.gamma if self.state.speed_mode == "gamma" else self.state.beta
+        if not (np.isfinite(v) and lo <= v < hi):
+            # refused, said so, and the box shows the value in use again
+            self.speed_note.value = f"<span style='color:{PALETTE['receding']}'>{rule}: {v:g} not used; still {current:.6g}</span>"
+            self._busy = True
+            self.speed_text.value = current
+            self._busy = False
+            return
+        self.state.set_speed(v)
         self._busy = True
-        self.speed.value = min(max(change["new"], self.speed.min), self.speed.max)
+        self.speed.value = min(max(v, self.speed.min), self.speed.max)
         self._busy = False
+        if not (self.speed.min <= v <= self.speed.max):
+            self.speed_note.value = f"{mode} {v:.6g} is beyond the slider (up to {self.speed.max:g}): the slider rests at its end; the figure and read-out use {v:.6g}"
+        else:
+            self.speed_note.value = ""
+        self.update()
+
+    def _on_scale(self, change):
+        self.ax_obs.set_yscale("log" if change["new"] == "log" else "linear")
+        self._top = None  # new limits and a full redraw
         self.update()
 
     def _on_change(self, _change=None):
@@ -468,29 +508,47 @@ class SpectrumExplorer:
         self.l_app.set_data(x, f)
         xr, fr = s.observed("receding")
         self.l_rec.set_data(xr, fr)
-        # the observed panel follows the shifted spectra (a full redraw only when they leave it or fill a small part)
+        # the observed panel follows the shifted spectra (a full redraw only when they leave it or fill a
+        # small part), unless "hold range" keeps the limits the user is looking at
         lo, hi = float(np.nanmin([np.nanmin(x), np.nanmin(xr)])), float(np.nanmax([np.nanmax(x), np.nanmax(xr)]))
         x0, x1 = self.ax_obs.get_xlim()
-        refit = not (x0 <= lo and hi <= x1 and (hi - lo) > 0.5 * (x1 - x0))
+        refit = not self.hold.value and not (x0 <= lo and hi <= x1 and (hi - lo) > 0.5 * (x1 - x0))
         if refit:
             pad = 0.03 * (hi - lo)
             self.ax_obs.set_xlim(lo - pad, hi + pad)
             x0, x1 = lo - pad, hi + pad
         # line labels: staggered in height where they would overlap
         placed = []
+        outside = []
+        unit = u.Unit(s.axis_unit).to_string()
         for n, pos in sorted(s.shifted_lines("approaching").items(), key=lambda kv: kv[1]):
             self.markers[n].set_xdata([pos, pos])
+            if not x0 <= pos <= x1:
+                outside.append(f"{n} at {pos:.6g} {unit}")
             frac = (pos - x0) / (x1 - x0)
             level = 0
             while any(abs(frac - f0) < 0.09 and lv == level for f0, lv in placed):
                 level += 1
             placed.append((frac, level))
             self.marker_labels[n].set_position((pos, 1.02 + 0.09 * level))
+        self.range_note.value = (
+            f"<span class='dk-outside' style='color:{PALETTE['receding']}'>outside the shown range (hold range is on): "
+            + ", ".join(outside)
+            + f"; shown {x0:.6g} to {x1:.6g} {unit}</span>"
+            if outside
+            else ""
+        )
         top = float(np.nanmax([np.nanmax(f), np.nanmax(fr), 2.0]))
+        log = self.flux_scale.value == "log"
         if refit or self._top is None or not (0.3 * self._top < top < self._top):
             # rescale (a full redraw) only when the curves leave the frame or shrink a lot
             self._top = 1.5 * top
-            self.ax_obs.set_ylim(0, self._top)
+            if log:
+                positive = np.concatenate([f[np.isfinite(f) & (f > 0)], fr[np.isfinite(fr) & (fr > 0)]])
+                bottom = 0.5 * float(positive.min()) if positive.size else 1e-3 * self._top
+                self.ax_obs.set_ylim(max(bottom, 1e-6 * self._top), 2.0 * self._top)
+            else:
+                self.ax_obs.set_ylim(0, self._top)
             self.image.value = self.blit.full()
         else:
             self.image.value = self.blit.frame()
@@ -510,8 +568,21 @@ class SpectrumExplorer:
         self.speed_mode.value = "beta"
         self.speed_text.value = f.beta
         self.angle.value = float(f.value("viewing_angle"))
-        notes = ("; " + "; ".join(f.notes)) if f.notes else ""
-        self.fit_result.value = f"best fit: beta = {f.beta:.5f} &plusmn; {f.beta_err:.2g}, angle = {f.value('viewing_angle'):.3f} &plusmn; {f.error('viewing_angle'):.2g} deg{notes}"
+        from ._format import with_error
+
+        warn = [
+            f"{t['label'][i] if 'label' in t.colnames else name} {t['status'][i]}: {t['message'][i]}"
+            for i in range(len(t))
+            if t["status"][i] != "ok"
+        ]
+        notes = list(f.notes) + warn
+        text = (
+            f"best fit: beta = {with_error(f.beta, f.beta_err)}, "
+            f"viewing angle = {with_error(f.value('viewing_angle'), f.error('viewing_angle'))} deg"
+        )
+        if notes:
+            text += f"<br><span style='color:{PALETTE['receding']}'>" + "; ".join(notes) + "</span>"
+        self.fit_result.value = text
         return f
 
     def _ipython_display_(self):

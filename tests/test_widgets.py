@@ -171,3 +171,47 @@ def test_copy_parameters_reproduces_the_readouts_and_reset_restores():
     assert_allclose(ns["boost"], r["boost"], rtol=1e-12)
     ex._on_reset()
     assert (ex.state.beta, ex.state.angle_deg, ex.state.beaming, ex.state.z_cosmo) == (0.24, 57.0, None, 0.0)
+
+
+def test_exact_entry_says_its_limit_instead_of_clamping():
+    ex = SpectrumExplorer()
+    ex.speed_text.value = 0.999  # beyond the slider: used exactly, and said so
+    assert ex.state.beta == 0.999 and ex.speed.value == ex.speed.max
+    assert "beyond the slider" in ex.speed_note.value
+    assert_allclose(_delta_text(ex), dk.doppler_factor(0.999, 57 * u.deg), atol=6e-6)  # read-out to 5 decimals
+    ex.speed_text.value = 1.2  # not a speed: refused with the rule, the value in use kept
+    assert ex.state.beta == 0.999 and ex.speed_text.value == 0.999
+    assert "beta must be in [0, 1)" in ex.speed_note.value and "1.2 not used" in ex.speed_note.value
+    ex.speed_mode.value = "gamma"
+    ex.speed_text.value = 0.5
+    assert "Lorentz factor must be >= 1" in ex.speed_note.value
+    ex.speed_text.value = 40.0  # far beyond the slider's 10: exact
+    assert_allclose(ex.state.gamma, 40.0, rtol=1e-12)
+
+
+def test_hold_range_keeps_the_limits_and_names_the_lines_that_left():
+    ex = SpectrumExplorer()
+    limits = ex.ax_obs.get_xlim()
+    ex.hold.value = True
+    ex.speed_mode.value = "gamma"
+    ex.speed.value = 6.0
+    assert ex.ax_obs.get_xlim() == limits
+    note = ex.range_note.value
+    assert "outside the shown range" in note and "H-alpha at" in note
+    ex.hold.value = False  # follows again, no message
+    assert ex.ax_obs.get_xlim() != limits and ex.range_note.value == ""
+
+
+def test_log_flux_scale_shows_a_faint_receding_jet():
+    ex = SpectrumExplorer()
+    ex.beaming.value = "continuous jet"
+    ex.speed.value, ex.angle.value = 0.9, 10.0  # the receding jet ~1e-5 of the approaching one
+    ex.flux_scale.value = "log"
+    assert ex.ax_obs.get_yscale() == "log"
+    _x, fr = ex.l_rec.get_data()
+    lo, hi = ex.ax_obs.get_ylim()
+    assert lo <= np.nanmin(fr[fr > 0]) and np.nanmax(fr) <= hi  # the faint jet is inside the frame
+
+
+def test_fit_button_is_absent_without_an_observed_spectrum():
+    assert SpectrumExplorer().fit_button.layout.display == "none"
