@@ -64,6 +64,7 @@ __all__ = [
     "find_spectra",
     "jet_pair_closed_form",
     "load_config",
+    "measure_file",
     "process_chunk",
     "run_batch",
 ]
@@ -562,6 +563,61 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     row["status"] = "suspect" if flags else "ok"
     row["message"] = "; ".join(notes) if notes else ("; ".join(sorted(flags)) if flags else "")
     return row
+
+
+def measure_file(path: str | Path, config) -> tuple:
+    """Read one spectrum and measure it as the batch does: the table behind one batch row.
+
+    For figures and checks of a single row (the population explorer uses it): the lines,
+    components, tie, continuum, window, redshift range and host lines of the configuration.
+
+    Parameters
+    ----------
+    path : str or Path
+        A spectrum file (any format the batch reads).
+    config : str, Path, dict or BatchConfig
+        The batch configuration.
+
+    Returns
+    -------
+    spectrum : specutils.Spectrum
+        The spectrum as read (units and medium as the configuration asks).
+    table : astropy.table.QTable
+        The :func:`dopplerkit.measure.measure_lines` table, rows labelled as the batch's columns.
+    """
+    import astropy.units as u
+    from astropy.table import vstack
+
+    from .io import read_spectrum
+    from .measure import measure_lines
+
+    cfg = config if isinstance(config, BatchConfig) else parse_config(config) if isinstance(config, dict) else load_config(config)
+    c = cfg.as_dict()
+    spectrum = read_spectrum(path, spectral_unit=c["spectral_unit"], flux_unit=c["flux_unit"], medium=c["medium"])
+    lines = _line_dicts(c)
+    groups = [lines] if c["tie"] else [[ln] for ln in lines]
+    tables = []
+    for group in groups:
+        objs = [ln["name"] if "name" in ln else u.Quantity(ln["rest"]) for ln in group]
+        t = measure_lines(
+            spectrum,
+            objs,
+            components=group[0]["components"],
+            tie=bool(c["tie"]),
+            kind=c["kind"],
+            continuum=c["continuum"],
+            continuum_degree=c["continuum_degree"],
+            z_range=(c["z_min"], c["z_max"]),
+            method="fast",
+            window=c["window"],
+            window_kms=c["window_kms"],
+            host=_host_arg(c),
+            host_z=c.get("host_z", 0.0),
+        )
+        labels = {str(o if isinstance(o, str) else ln.get("label")): ln["label"] for o, ln in zip(objs, group, strict=True)}
+        t["label"] = [labels.get(str(x), str(x)) for x in t["line"]]
+        tables.append(t)
+    return spectrum, (tables[0] if len(tables) == 1 else vstack(tables))
 
 
 def process_chunk(paths: list[str], fmts: list[str | None], cfg: dict) -> list[dict]:

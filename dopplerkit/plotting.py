@@ -259,7 +259,7 @@ def plot_line_fit(spectrum, table, *, fig=None, path=None, pad_kms: float = 4000
         ax.plot(xs, cont + prof, color=colour, lw=0.9, ls="-" if st == "ok" else ":", label=f"{line} {comp} ({st})")
     unit = spectrum.spectral_axis.unit
     funit = spectrum.flux.unit
-    ax.set_ylabel(f"flux density ({funit.to_string()})" if funit.to_string() else "flux density")
+    ax.set_ylabel(f"flux density\n({funit.to_string()})" if funit.to_string() else "flux density")
     ax.tick_params(labelbottom=True)
     ax.legend(fontsize=7, frameon=False, loc="lower left", bbox_to_anchor=(0.1, 1.0), ncols=2)  # clear of the offset text
     axr.plot(xs, (ys - cont - g) / ss, ".", ms=2, color=PALETTE["neutral"])

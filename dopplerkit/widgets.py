@@ -1,4 +1,5 @@
-"""Notebook widgets: a spectrum explorer, a beta-viewing angle constraint plane, a precessing-jet explorer.
+"""Notebook widgets: a spectrum explorer, a beta-viewing angle constraint plane, a precessing-jet
+explorer, an outflow explorer and a population explorer of batch results.
 
 Each widget is a plain *state* object (no ipywidgets, testable without a browser) and a
 *view* that binds ipywidgets controls to it. The matplotlib figure of a view is created once;
@@ -8,7 +9,7 @@ classic notebooks and Voila without a plotting extension. Fits run only on a but
 
 CSS classes (stable hooks for tests and styling): ``dk-explorer``, ``dk-speed``,
 ``dk-speed-text``, ``dk-angle``, ``dk-readout``, ``dk-figure``, ``dk-fit``, ``dk-plane``,
-``dk-precession``.
+``dk-precession``, ``dk-outflow``, ``dk-population``.
 """
 
 from __future__ import annotations
@@ -22,7 +23,18 @@ import numpy as np
 
 from .kinematics import SPEED_OF_LIGHT_KMS, apparent_speed, beaming_factor, doppler_factor, lorentz_factor, redshift
 
-__all__ = ["ConstraintPlane", "ExplorerState", "PlaneState", "PrecessionExplorer", "PrecessionState", "SpectrumExplorer"]
+__all__ = [
+    "ConstraintPlane",
+    "ExplorerState",
+    "OutflowExplorer",
+    "OutflowState",
+    "PlaneState",
+    "PopulationExplorer",
+    "PopulationState",
+    "PrecessionExplorer",
+    "PrecessionState",
+    "SpectrumExplorer",
+]
 
 from .plotting import PALETTE
 
@@ -896,3 +908,411 @@ class PrecessionExplorer:
         from IPython.display import display
 
         display(self.widget)
+
+
+# ---------------------------------------------------------------------------
+# 4. Outflow explorer: one line's observed position -> line-of-sight speed
+# ---------------------------------------------------------------------------
+@dataclass
+class OutflowState:
+    """One absorption or emission line of an outflow, read as a speed.
+
+    Attributes
+    ----------
+    line : str
+        Catalogue name of the line's identity.
+    observed, observed_err : float
+        Observed line position and its 1-sigma error, in ``unit`` (keV, Angstrom, Hz, ...;
+        wavelengths in vacuum).
+    unit : str
+    z_host, z_host_err : float
+        The host's cosmological redshift and its error (0 = exact), composed as
+        (1 + z_obs) = (1 + z_host)(1 + z_outflow).
+    """
+
+    line: str = "Fe XXVI Ly-alpha"
+    observed: float = 4.4
+    observed_err: float = 0.01
+    unit: str = "keV"
+    z_host: float = 0.0
+    z_host_err: float = 0.0
+
+    def check(self) -> None:
+        """ValueError naming the first value that cannot be read (nothing is clamped)."""
+        for name, v, ok, rule in (
+            ("observed", self.observed, lambda x: x > 0, "> 0"),
+            ("observed_err", self.observed_err, lambda x: x >= 0, ">= 0"),
+            ("z_host", self.z_host, lambda x: x > -1, "> -1"),
+            ("z_host_err", self.z_host_err, lambda x: x >= 0, ">= 0"),
+        ):
+            if not (isinstance(v, (int, float)) and np.isfinite(v) and ok(v)):
+                raise ValueError(f"{name} must be finite and {rule}, got {v!r}")
+
+    def reading(self) -> dict:
+        """z_obs, z_outflow and its error, the relativistic line-of-sight speed (positive towards
+        us) and its error, the linear reading c|z| and how far it is off (signed fraction)."""
+        from .kinematics import beta_from_redshift
+        from .lines import rest_value
+
+        self.check()
+        unit = u.Unit(self.unit)
+        rest = rest_value(self.line, unit, medium="vacuum")
+        obs = self.observed * unit
+        # 1 + z = lambda_obs / lambda_rest, whatever the axis
+        lam_o = obs.to_value(u.AA, equivalencies=u.spectral())
+        lam_r = rest.to_value(u.AA, equivalencies=u.spectral())
+        w_obs = lam_o / lam_r
+        w = w_obs / (1.0 + self.z_host)
+        rel = self.observed_err / self.observed  # the fractional error is the same on every axis kind
+        w_err = w * np.hypot(rel, self.z_host_err / (1.0 + self.z_host))
+        z = w - 1.0
+        beta = -float(beta_from_redshift(z))  # towards us positive
+        beta_err = 4 * w / (w * w + 1) ** 2 * w_err
+        linear = -z  # c z as a speed towards us
+        return {
+            "rest": float(rest.value),
+            "z_obs": w_obs - 1.0,
+            "z": z,
+            "z_err": w_err,
+            "beta": beta,
+            "beta_err": beta_err,
+            "linear": linear,
+            "linear_off": (linear - beta) / abs(beta) if beta != 0 else 0.0,
+        }
+
+    def sentence(self) -> str:
+        """The reading in words, numbers rounded to their errors."""
+        from ._format import with_error
+
+        r = self.reading()
+        way = "towards us" if r["beta"] >= 0 else "away from us"
+        off = r["linear_off"]
+        word = "lower" if abs(r["linear"]) < abs(r["beta"]) else "higher"
+        return (
+            f"{self.line} (rest {r['rest']:.6g} {self.unit}) at {with_error(self.observed, self.observed_err)} {self.unit}: "
+            f"z = {with_error(r['z'], r['z_err'])} in the host's frame; "
+            f"line-of-sight speed {with_error(abs(r['beta']), r['beta_err'])} c {way} (relativistic); "
+            f"the linear reading c|z| = {abs(r['linear']):.4f} c is {100 * abs(off):.1f}% {word}"
+        )
+
+
+class OutflowExplorer:
+    """Line identity, observed position and host redshift in; the outflow speed with its error,
+    the relativistic and linear readings, and the locus of (speed, viewing angle) out."""
+
+    def __init__(self, state: OutflowState | None = None, lines=None):
+        import ipywidgets as W
+
+        from .lines import catalogue
+
+        self.state = s = state or OutflowState()
+        unit = u.Unit(s.unit)
+        if lines is None:  # the catalogue lines on the same kind of axis
+            names = [str(r["name"]) for r in catalogue() if u.Unit(str(r["unit"])).physical_type == unit.physical_type]
+            lines = names if s.line in names else [s.line, *names]
+        self.line = W.Dropdown(options=list(lines), value=s.line, description="line")
+        self.observed = W.FloatText(value=s.observed, description=f"observed ({s.unit})", step=0.001)
+        self.observed_err = W.FloatText(value=s.observed_err, description="its error", step=0.001)
+        self.z_host = W.FloatText(value=s.z_host, description="host z", step=0.001)
+        self.z_host_err = W.FloatText(value=s.z_host_err, description="host z error", step=0.0001)
+        for w in (self.observed, self.observed_err, self.z_host, self.z_host_err):
+            w.style = {"description_width": "110px"}
+        self.readout = W.HTML()
+        self.readout.add_class("dk-outflow-readout")
+        self.fig = _figure(6.4, 3.6)
+        self.image = _image(self.fig)
+        self.ax = self.fig.subplots()
+        for w in (self.line, self.observed, self.observed_err, self.z_host, self.z_host_err):
+            w.observe(self._on_change, "value")
+        self.widget = W.VBox(
+            [
+                W.HBox([self.line, self.observed, self.observed_err]),
+                W.HBox([self.z_host, self.z_host_err]),
+                self.readout,
+                self.image,
+            ]
+        )
+        self.widget.add_class("dk-outflow")
+        self.update()
+
+    def _on_change(self, _change=None):
+        self.update()
+
+    def update(self):
+        from .kinematics import redshift_locus
+
+        s = self.state
+        s.line, s.observed, s.observed_err = self.line.value, float(self.observed.value), float(self.observed_err.value)
+        s.z_host, s.z_host_err = float(self.z_host.value), float(self.z_host_err.value)
+        try:
+            r = s.reading()
+        except ValueError as exc:
+            self.readout.value = f"<span style='color:{PALETTE['receding']}'>{exc}; the figure shows the last valid reading</span>"
+            return
+        self.readout.value = f"<span class='dk-outflow-text'>{s.sentence()}</span>"
+        ax = self.ax
+        ax.clear()
+        theta, mid = redshift_locus(r["z"], num=361)
+        th = theta.to_value(u.deg)
+        band = [redshift_locus(r["z"] + k * r["z_err"], num=361)[1] for k in (-1, 1)] if r["z_err"] > 0 else None
+        for i in range(2):
+            if band is not None:
+                lo, hi = np.fmin(band[0][i], band[1][i]), np.fmax(band[0][i], band[1][i])
+                ax.fill_between(th, lo, hi, color=PALETTE["band"], alpha=0.5, lw=0, label="1 sigma" if i == 0 else None)
+            ax.plot(th, mid[i], color=PALETTE["approaching"], lw=1.2, label="speed and angle giving this z" if i == 0 else None)
+        ax.axhline(abs(r["beta"]), color=PALETTE["neutral"], ls=":", lw=0.9, label=f"along the line of sight: {abs(r['beta']):.4f} c")
+        ax.axhline(abs(r["linear"]), color=PALETTE["receding"], ls="--", lw=0.9, label=f"linear reading c|z| = {abs(r['linear']):.4f} c")
+        ax.set_xlim(0, 180)
+        ax.set_ylim(0, 1)
+        ax.set_xlabel("viewing angle (deg; 0 = moving straight at us)")
+        ax.set_ylabel(r"speed $\beta = v/c$")
+        ax.set_title(f"{s.line}: z = {r['z']:+.4f} in the host's frame", fontsize=9, loc="right")
+        ax.legend(fontsize=7, frameon=False, loc="upper right")
+        self.image.value = _render(self.fig)
+
+    def _ipython_display_(self):
+        from IPython.display import display
+
+        display(self.widget)
+
+
+# ---------------------------------------------------------------------------
+# 5. Population explorer: a batch result table, filtered, with one row's spectrum and fit
+# ---------------------------------------------------------------------------
+@dataclass
+class PopulationState:
+    """A batch result table and what is shown of it.
+
+    Attributes
+    ----------
+    table : astropy Table
+        The batch output (columns file, status, flags, message, beta, beta_err, viewing_angle,
+        viewing_angle_err).
+    status : str
+        "all" or one status to keep ("ok", "suspect", "error").
+    flag : str
+        "any" (no filter), "none" (rows without flags) or one flag name.
+    alpha : float
+        Spectral index of the beaming curves (S proportional to nu^-alpha; continuous jet).
+    """
+
+    table: object
+    status: str = "all"
+    flag: str = "any"
+    alpha: float = 0.7
+
+    def flags(self) -> list[str]:
+        """Every flag that occurs in the table, sorted."""
+        out = set()
+        for f in self.table["flags"] if "flags" in self.table.colnames else []:
+            out.update(x for x in str(f).split(",") if x and x != "--")
+        return sorted(out)
+
+    def rows(self) -> np.ndarray:
+        """Indices of the rows the filters keep."""
+        t = self.table
+        keep = np.ones(len(t), bool)
+        if self.status != "all":
+            keep &= np.asarray(t["status"]) == self.status
+        if self.flag != "any" and "flags" in t.colnames:
+            sets = [set(str(f).split(",")) - {"", "--"} for f in t["flags"]]
+            keep &= np.array([not s_ if self.flag == "none" else self.flag in s_ for s_ in sets], bool)
+        return np.flatnonzero(keep)
+
+
+class PopulationExplorer:
+    """Filter a batch result table by status and flag; see the speed-angle plane with the
+    beaming selection drawn; choose a row to see its spectrum, fit and residuals.
+
+    Parameters
+    ----------
+    table : astropy Table
+        Output of ``dopplerkit batch`` / :func:`dopplerkit.batch.run_batch`.
+    config : str, Path, dict or BatchConfig, optional
+        The run's configuration: the chosen row's spectrum is measured again as the batch did
+        (:func:`dopplerkit.batch.measure_file`) and drawn with its fit. Without it, no spectrum panel.
+    truth : Table, optional
+        Columns file, beta, viewing_angle (invented data only): drawn as open circles.
+    """
+
+    #: jet/counter-jet flux ratios drawn: beyond them a counter-jet falls below that dynamic range
+    RATIOS = (10.0, 100.0)
+
+    def __init__(self, table, config=None, truth=None):
+        import ipywidgets as W
+
+        self.state = PopulationState(table)
+        self.config = config
+        self.truth = truth
+        self.status = W.ToggleButtons(options=["all", "ok", "suspect", "error"], value="all", description="status")
+        self.flag = W.Dropdown(options=["any", "none", *self.state.flags()], value="any", description="flag")
+        self.row = W.Dropdown(options=[], description="spectrum", layout=W.Layout(width="460px"))
+        self.detail = W.HTML()
+        self.detail.add_class("dk-population-detail")
+        self.fig = _figure(6.4, 4.0)
+        self.image = _image(self.fig)
+        self.ax = self.fig.subplots()
+        self.spec_fig = _figure(8.0, 4.4)
+        self.spec_image = _image(self.spec_fig)
+        self.spec_image.add_class("dk-population-spectrum")
+        self.status.observe(self._on_filter, "value")
+        self.flag.observe(self._on_filter, "value")
+        self.row.observe(self._on_row, "value")
+        self.widget = W.VBox([W.HBox([self.status, self.flag]), self.image, self.row, self.detail, self.spec_image])
+        if config is None:
+            self.spec_image.layout.display = "none"
+        self.widget.add_class("dk-population")
+        self._on_filter()
+
+    # -- callbacks --------------------------------------------------------------------
+    def _on_filter(self, _change=None):
+        self.state.status, self.state.flag = self.status.value, self.flag.value
+        idx = self.state.rows()
+        t = self.state.table
+        from pathlib import Path
+
+        options = [(f"{Path(str(t['file'][i])).name} ({t['status'][i]})", int(i)) for i in idx]
+        current = self.row.value
+        self.row.options = options
+        if options:
+            self.row.value = current if current in idx else options[0][1]
+        self.redraw()
+        if not options:
+            self.detail.value = "no rows pass these filters"
+
+    def _on_row(self, _change=None):
+        self.redraw()
+        self.show_row()
+
+    def redraw(self):
+        """The speed-angle plane of the filtered rows, the selected one marked."""
+        from .kinematics import jet_counterjet_ratio
+
+        t, ax = self.state.table, self.ax
+        ax.clear()
+        th = np.linspace(0.5, 90.0, 180)
+        bb = np.linspace(0.0, 0.99, 160)
+        TT, BB = np.meshgrid(th, bb)
+        R = jet_counterjet_ratio(BB, TT * u.deg, self.state.alpha, "jet")
+        cs = ax.contour(TT, BB, R, levels=list(self.RATIOS), colors=PALETTE["neutral"], linewidths=0.7, linestyles="--")
+        ax.clabel(cs, fmt={r: f"jet/counter-jet {r:g}" for r in self.RATIOS}, fontsize=6)
+        ax.contourf(TT, BB, R, levels=[self.RATIOS[-1], np.inf], colors=["0.85"], alpha=0.6)
+        idx = self.state.rows()
+        status = np.asarray(t["status"])[idx]
+
+        def col(name):
+            return np.asarray(t[name], float)[idx] if name in t.colnames else np.full(idx.size, np.nan)
+
+        b, be, a, ae = col("beta"), col("beta_err"), col("viewing_angle"), col("viewing_angle_err")
+        ok = status == "ok"
+        if ok.any():
+            ax.errorbar(
+                a[ok],
+                b[ok],
+                xerr=ae[ok],
+                yerr=be[ok],
+                fmt="o",
+                ms=3,
+                color=PALETTE["approaching"],
+                ecolor="0.7",
+                elinewidth=0.7,
+                label=f"ok ({ok.sum()})",
+            )
+        sus = status == "suspect"
+        if sus.any():
+            ax.plot(a[sus], b[sus], "o", ms=4, mfc="none", mec="0.45", label=f"suspect ({sus.sum()})")
+        if self.truth is not None:
+            ax.plot(
+                np.asarray(self.truth["viewing_angle"], float),
+                np.asarray(self.truth["beta"], float),
+                ".",
+                ms=2,
+                color=PALETTE["receding"],
+                label="true (invented)",
+            )
+        i = self.row.value
+        if i is not None and i in idx and "beta" in t.colnames and np.isfinite(float(np.ma.filled(t["beta"][i], np.nan))):
+            ax.plot(
+                [float(t["viewing_angle"][i])],
+                [float(t["beta"][i])],
+                "s",
+                ms=9,
+                mfc="none",
+                mec=PALETTE["highlight"],
+                mew=2,
+                label="chosen",
+            )
+        n_err = int(np.sum(status == "error"))
+        ax.set_xlim(0, 90)
+        ax.set_ylim(0, 1)
+        ax.set_xlabel("viewing angle (deg; 0 = approaching jet towards us)")
+        ax.set_ylabel(r"speed $\beta = v/c$")
+        ax.set_title(
+            f"{idx.size} rows shown ({n_err} failed, not plotted); shaded: counter-jet > {self.RATIOS[-1]:g}x fainter "
+            f"(continuous jet, alpha {self.state.alpha:g}), missing from pair samples",
+            fontsize=7,
+            loc="left",
+            wrap=True,
+        )
+        if ax.get_legend_handles_labels()[1]:
+            ax.legend(fontsize=7, frameon=False, loc="upper right")
+        self.image.value = _render(self.fig)
+
+    def show_row(self):
+        """The chosen row in words and, with a configuration, its spectrum with the fit and residuals."""
+        from ._format import with_error
+
+        i = self.row.value
+        if i is None:
+            return
+        t = self.state.table
+        r = t[i]
+        text = f"<b>{r['file']}</b>: <b>{r['status']}</b>"
+        if "beta" in t.colnames and np.isfinite(float(np.ma.filled(r["beta"], np.nan))):
+            text += (
+                f"; beta = {with_error(float(r['beta']), float(r['beta_err']))}, "
+                f"viewing angle = {with_error(float(r['viewing_angle']), float(r['viewing_angle_err']))} deg"
+            )
+        msg = str(r["message"]) if "message" in t.colnames and str(r["message"]) not in ("", "--") else ""
+        if msg:
+            text += f"<br><span style='color:{PALETTE['receding']}'>{msg}</span>"
+        self.detail.value = text
+        if self.config is None:
+            return
+        if str(r["status"]) == "error":
+            self.spec_fig.clear()
+            self.spec_fig.text(0.5, 0.5, "no fit for a failed row (see its message above)", ha="center", fontsize=10)
+            self.spec_image.value = _render(self.spec_fig)
+            return
+        import warnings
+
+        from .batch import measure_file
+        from .plotting import plot_line_fit
+
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                spec, m = measure_file(str(r["file"]), self.config)
+        except Exception as exc:  # the file moved or cannot be read: say so in the panel
+            self.detail.value = text + f"<br><span style='color:{PALETTE['receding']}'>cannot draw the spectrum: {exc}</span>"
+            return
+        self.spec_fig.set_layout_engine("constrained")
+        plot_line_fit(spec, m, fig=self.spec_fig)
+        from pathlib import Path
+
+        self.spec_fig.suptitle(Path(str(r["file"])).name, fontsize=9)
+        self.spec_image.value = _render_fresh(self.spec_fig)
+
+    def _ipython_display_(self):
+        from IPython.display import display
+
+        display(self.widget)
+
+
+def _render_fresh(fig) -> bytes:
+    """PNG bytes of a figure whose layout changes each time (constrained layout solved per draw)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
+    canvas.draw()
+    return _png(canvas)

@@ -215,3 +215,85 @@ def test_log_flux_scale_shows_a_faint_receding_jet():
 
 def test_fit_button_is_absent_without_an_observed_spectrum():
     assert SpectrumExplorer().fit_button.layout.display == "none"
+
+
+def test_outflow_reading_against_astropy():
+    # astropy's relativistic Doppler equivalency is the reference (u.doppler_relativistic; its
+    # convention is the radial speed v/c = (w^2 - 1)/(w^2 + 1), w = 1 + z: Rybicki & Lightman 1979
+    # eq. 4.11 at theta = 0); host redshift composed multiplicatively (Davis & Lineweaver 2004,
+    # PASA 21, 97, eq. for peculiar velocities, from memory)
+    from dopplerkit.lines import rest_value
+    from dopplerkit.widgets import OutflowState
+
+    s = OutflowState(line="Fe XXVI Ly-alpha", observed=4.3, observed_err=0.01, z_host=0.871)
+    r = s.reading()
+    rest = rest_value("Fe XXVI Ly-alpha", "keV")
+    e_host = rest / 1.871  # where the host's rest frame would put the line
+    v = (4.3 * u.keV).to(u.km / u.s, equivalencies=u.doppler_relativistic(e_host))
+    assert_allclose(r["beta"], -(v / (299792.458 * u.km / u.s)).to_value(""), rtol=1e-10)
+    assert_allclose(r["linear"], -r["z"], rtol=0)
+    # the error: numerical derivative of the speed with the observed energy
+    h = 1e-6
+    up = OutflowState(line="Fe XXVI Ly-alpha", observed=4.3 + h, observed_err=0.0, z_host=0.871).reading()["beta"]
+    dn = OutflowState(line="Fe XXVI Ly-alpha", observed=4.3 - h, observed_err=0.0, z_host=0.871).reading()["beta"]
+    assert_allclose(r["beta_err"], abs(up - dn) / (2 * h) * 0.01, rtol=1e-5)
+    assert "lower" in s.sentence() and "towards us" in s.sentence()
+    with pytest.raises(ValueError, match="observed must be finite and > 0"):
+        OutflowState(observed=-1.0).reading()
+
+
+def test_outflow_explorer_controls_and_bad_entry():
+    from dopplerkit.widgets import OutflowExplorer, OutflowState
+
+    ex = OutflowExplorer(OutflowState(observed=5.1, observed_err=0.02, z_host=0.871))
+    png = ex.image.value
+    assert "line-of-sight speed" in ex.readout.value
+    ex.z_host.value = 0.5
+    assert ex.image.value != png and "0.5" not in ex.readout.value.split("host")[0]
+    ex.observed_err.value = -0.1  # refused by name, nothing clamped, no crash
+    assert "observed_err must be finite and >= 0" in ex.readout.value
+    assert ex.ax.get_xlabel().startswith("viewing angle (deg") and "beta" in ex.ax.get_ylabel()
+
+
+def test_population_filters_and_the_chosen_row(tmp_path):
+    from astropy.table import Table
+
+    from dopplerkit.batch import measure_file, run_batch
+    from dopplerkit.demo import default_data_dir
+    from dopplerkit.widgets import PopulationExplorer, PopulationState
+
+    t = Table(
+        {
+            "file": ["a.fits", "b.fits", "c.fits"],
+            "status": ["ok", "suspect", "error"],
+            "flags": ["", "blend,weak", ""],
+            "message": ["", "blended", "cannot read"],
+            "beta": [0.2, 0.3, np.nan],
+            "beta_err": [0.01, 0.02, np.nan],
+            "viewing_angle": [40.0, 60.0, np.nan],
+            "viewing_angle_err": [1.0, 2.0, np.nan],
+        }
+    )
+    s = PopulationState(t)
+    assert s.flags() == ["blend", "weak"]
+    s.status = "suspect"
+    assert s.rows().tolist() == [1]
+    s.status, s.flag = "all", "none"
+    assert s.rows().tolist() == [0, 2]
+    s.flag = "weak"
+    assert s.rows().tolist() == [1]
+    ex = PopulationExplorer(t)
+    ex.status.value = "error"
+    assert "cannot read" in ex.detail.value and ex.spec_image.layout.display == "none"
+    # with the configuration, the chosen row's spectrum is measured again exactly as the batch did
+    survey = default_data_dir() / "survey"
+    src = tmp_path / "spectra"
+    src.mkdir()
+    for name in ("dkj_001.fits", "dkj_002.fits"):
+        (src / name).write_bytes((survey / "spectra" / name).read_bytes())
+    _code, res = run_batch(src, survey / "config.toml", tmp_path / "r.ecsv", workers=1, quiet=True)
+    _spec, m = measure_file(res["file"][0], survey / "config.toml")
+    assert_allclose(m["z"][0], res["h_alpha_approaching_z"][0], rtol=1e-9)
+    assert_allclose(m["z"][1], res["h_alpha_receding_z"][0], rtol=1e-9)
+    ex = PopulationExplorer(res, config=survey / "config.toml")
+    assert ex.spec_image.value[:4] == b"\x89PNG" and "beta = " in ex.detail.value
