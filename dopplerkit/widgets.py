@@ -891,6 +891,7 @@ class PrecessionExplorer:
                 w.value = getattr(self.state, k)
         finally:
             self._moving = False
+        self.update()  # the figure first, then the message: a reader (or a test) seeing the message sees the fitted curves
         pm = " &plusmn; "
         self.message.value = "<br>".join(
             [
@@ -901,7 +902,6 @@ class PrecessionExplorer:
                 *f.notes,
             ]
         )
-        self.update()
         return f
 
     def _ipython_display_(self):
@@ -1015,8 +1015,14 @@ class OutflowExplorer:
         self.observed_err = W.FloatText(value=s.observed_err, description="its error", step=0.001)
         self.z_host = W.FloatText(value=s.z_host, description="host z", step=0.001)
         self.z_host_err = W.FloatText(value=s.z_host_err, description="host z error", step=0.0001)
-        for w in (self.observed, self.observed_err, self.z_host, self.z_host_err):
+        for w, cls in (
+            (self.observed, "dk-outflow-observed"),
+            (self.observed_err, "dk-outflow-error"),
+            (self.z_host, "dk-outflow-zhost"),
+            (self.z_host_err, "dk-outflow-zhost-error"),
+        ):
             w.style = {"description_width": "110px"}
+            w.add_class(cls)
         self.readout = W.HTML()
         self.readout.add_class("dk-outflow-readout")
         self.fig = _figure(6.4, 3.6)
@@ -1145,6 +1151,7 @@ class PopulationExplorer:
         self.config = config
         self.truth = truth
         self.status = W.ToggleButtons(options=["all", "ok", "suspect", "error"], value="all", description="status")
+        self.status.add_class("dk-status")
         self.flag = W.Dropdown(options=["any", "none", *self.state.flags()], value="any", description="flag")
         self.row = W.Dropdown(options=[], description="spectrum", layout=W.Layout(width="460px"))
         self.detail = W.HTML()
@@ -1175,7 +1182,9 @@ class PopulationExplorer:
         current = self.row.value
         self.row.options = options
         if options:
-            self.row.value = current if current in idx else options[0][1]
+            status = np.asarray(t["status"])[idx]
+            first = int(idx[np.argmax(status != "error")]) if (status != "error").any() else options[0][1]  # a row with a fit, if any
+            self.row.value = current if current in idx else first
         self.redraw()
         if not options:
             self.detail.value = "no rows pass these filters"
@@ -1221,15 +1230,20 @@ class PopulationExplorer:
         sus = status == "suspect"
         if sus.any():
             ax.plot(a[sus], b[sus], "o", ms=4, mfc="none", mec="0.45", label=f"suspect ({sus.sum()})")
-        if self.truth is not None:
-            ax.plot(
-                np.asarray(self.truth["viewing_angle"], float),
-                np.asarray(self.truth["beta"], float),
-                ".",
-                ms=2,
-                color=PALETTE["receding"],
-                label="true (invented)",
-            )
+        if self.truth is not None:  # the true values of the rows shown (matched by file name)
+            from pathlib import Path
+
+            shown = {Path(str(t["file"][i])).name for i in idx}
+            tm = np.array([Path(str(f)).name in shown for f in self.truth["file"]], bool)
+            if tm.any():
+                ax.plot(
+                    np.asarray(self.truth["viewing_angle"], float)[tm],
+                    np.asarray(self.truth["beta"], float)[tm],
+                    ".",
+                    ms=3,
+                    color=PALETTE["receding"],
+                    label=f"true (invented; {tm.sum()})",
+                )
         i = self.row.value
         if i is not None and i in idx and "beta" in t.colnames and np.isfinite(float(np.ma.filled(t["beta"][i], np.nan))):
             ax.plot(

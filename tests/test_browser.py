@@ -1,9 +1,13 @@
-"""Real-browser test: the spectrum explorer served by Voila, driven by Playwright in headless Chromium.
+"""Real-browser tests: every notebook served by Voila, driven by Playwright in headless Chromium.
+
+Each notebook must show its figures (image elements with non-blank pixels, no text repr of a
+figure anywhere on the page), and one interaction per notebook must change an image.
 
 Needs Debian's chromium at /usr/bin/chromium (``.ci/run`` installs it; never Playwright's own
 browser download). Locally without it the test is skipped with that reason; in CI
 (DOPPLERKIT_CI=1) a missing browser fails the test instead. Screenshots are saved under
-``test-artifacts/browser/`` (path printed).
+``test-artifacts/browser/`` (path printed): ``<notebook>_start.png`` after load and
+``<notebook>_after.png`` after the interaction.
 """
 
 from __future__ import annotations
@@ -42,20 +46,33 @@ def _free_port():
         return s.getsockname()[1]
 
 
-@pytest.fixture
-def voila_url(tmp_path):
-    _need_browser()
+NOTEBOOKS = {p.stem[:2]: p for p in sorted((ROOT / "notebooks").glob("*.ipynb"))}
+
+CHROMIUM_ARGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-component-update",
+    "--disable-sync",
+]
+
+
+def _serve(notebook: Path, tmp_path: Path):
     port = _free_port()
     voila = Path(sys.executable).with_name("voila")
-    log = (tmp_path / "voila.log").open("w")
+    log_path = tmp_path / f"voila_{notebook.stem}.log"
+    log = log_path.open("w")
     proc = subprocess.Popen(
         [
             str(voila),
-            str(ROOT / "notebooks" / "01_spectrum_explorer.ipynb"),
+            str(notebook),
             "--no-browser",
             f"--port={port}",
             "--Voila.ip=127.0.0.1",
-            "--VoilaExecutor.timeout=20",
+            "--VoilaExecutor.timeout=180",
             "--ServerApp.disable_check_xsrf=True",
         ],
         stdout=log,
@@ -63,7 +80,6 @@ def voila_url(tmp_path):
         cwd=ROOT / "notebooks",
         start_new_session=True,
     )
-    url = f"http://127.0.0.1:{port}/"
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:
         try:
@@ -71,67 +87,183 @@ def voila_url(tmp_path):
                 break
         except OSError:
             if proc.poll() is not None:
-                pytest.fail(f"voila exited early; log: {(tmp_path / 'voila.log').read_text()[-2000:]}")
+                pytest.fail(f"voila exited early; log: {log_path.read_text()[-2000:]}")
             time.sleep(0.3)
-    yield url
-    proc.terminate()
-    try:
-        proc.wait(timeout=15)
-    except subprocess.TimeoutExpired:
-        proc.kill()
-        proc.wait()
-    log.close()
+    return proc, log, f"http://127.0.0.1:{port}/"
 
 
-def test_speed_control_changes_delta_readout(voila_url):
+@pytest.fixture
+def serve(tmp_path):
+    _need_browser()
+    running = []
+
+    def start(key):
+        proc, log, url = _serve(NOTEBOOKS[key], tmp_path)
+        running.append((proc, log))
+        return url
+
+    yield start
+    for proc, log in running:
+        proc.terminate()
+        try:
+            proc.wait(timeout=15)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+        log.close()
+
+
+# In the page: every <img> loaded, and how many of them show more than one colour (a blank or
+# failed image is one flat colour). Images are drawn on a canvas of their natural size.
+_IMAGES_JS = """
+() => Array.from(document.images).map(img => {
+    if (!img.complete || img.naturalWidth === 0) return {src: img.src.slice(0, 40), ok: false, colours: 0};
+    const c = document.createElement('canvas');
+    c.width = img.naturalWidth; c.height = img.naturalHeight;
+    const g = c.getContext('2d');
+    g.drawImage(img, 0, 0);
+    const d = g.getImageData(0, 0, c.width, c.height).data;
+    const seen = new Set();
+    for (let i = 0; i < d.length && seen.size < 3; i += 4 * 97) seen.add(d[i] + ',' + d[i + 1] + ',' + d[i + 2]);
+    return {src: img.src.slice(0, 40), ok: true, colours: seen.size, width: img.naturalWidth};
+})
+"""
+
+
+def _open(p, url, ready_selector):
+    from playwright.sync_api import expect
+
+    browser = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+    # tall enough that the whole notebook is on the screenshot (Voila scrolls inside its own container)
+    page = browser.new_page(viewport={"width": 1200, "height": 3400})
+
+    def only_loopback(route):
+        host = re.match(r"^[a-z]+://([^/:]+)", route.request.url)
+        if host and host.group(1) in ("127.0.0.1", "localhost"):
+            return route.continue_()
+        return route.abort()  # e.g. Voila's font CDN: this machine has no internet
+
+    page.route("**/*", only_loopback)
+    page.goto(url, timeout=300_000)
+    expect(page.locator(ready_selector).first).to_be_visible(timeout=300_000)
+    return browser, page
+
+
+def _check_figures(page, key, n_min):
+    """Every image drawn (more than one colour), at least n_min of them, no text repr of a figure."""
+    page.wait_for_function(
+        "(n) => Array.from(document.images).filter(i => i.complete && i.naturalWidth > 0).length >= n", arg=n_min, timeout=120_000
+    )
+    images = page.evaluate(_IMAGES_JS)
+    drawn = [im for im in images if im["ok"] and im["colours"] > 1]
+    assert len(drawn) >= n_min, f"notebook {key}: {len(drawn)} drawn images of {len(images)}, need {n_min}: {images}"
+    text = page.inner_text("body")
+    assert "<Figure size" not in text and "Traceback" not in text, f"notebook {key} shows a figure repr or an error"
+
+
+def _image_changes(page, selector, action):
+    before = page.locator(selector).first.get_attribute("src")
+    action()
+    page.wait_for_function(
+        "([sel, before]) => { const i = document.querySelector(sel); return i && i.src !== before; }",
+        arg=[selector, before],
+        timeout=120_000,
+    )
+
+
+def _shots(page, key, when):
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    path = ARTIFACTS / f"notebook_{key}_{when}.png"
+    page.screenshot(path=str(path), full_page=True)
+    print(f"\nscreenshot {path}")
+
+
+def test_notebook_01_speed_control_changes_delta_readout(serve):
     from playwright.sync_api import expect, sync_playwright
 
-    ARTIFACTS.mkdir(parents=True, exist_ok=True)
-    print(f"\nscreenshots in {ARTIFACTS}")
+    url = serve("01")
     with sync_playwright() as p:
-        browser = p.chromium.launch(
-            executable_path=CHROMIUM,
-            args=[
-                "--headless",
-                "--no-sandbox",
-                "--disable-gpu",
-                "--disable-background-networking",
-                "--disable-quic",
-                "--no-first-run",
-                "--disable-component-update",
-                "--disable-sync",
-            ],
-        )
+        browser, page = _open(p, url, ".dk-readout .dk-delta")
         try:
-            page = browser.new_page(viewport={"width": 1200, "height": 1400})
-
-            def only_loopback(route):
-                host = re.match(r"^[a-z]+://([^/:]+)", route.request.url)
-                if host and host.group(1) in ("127.0.0.1", "localhost"):
-                    return route.continue_()
-                return route.abort()  # e.g. Voila's font CDN: this machine has no internet
-
-            page.route("**/*", only_loopback)
-            page.goto(voila_url, timeout=120_000)
             readout = page.locator(".dk-readout .dk-delta").first
-            expect(readout).to_be_visible(timeout=120_000)
-            start = readout.inner_text()
-            expected_start = f"{dk.doppler_factor(0.24, 57 * u.deg):.5f}"
-            assert start == expected_start
-            image = page.locator("img.dk-figure, .dk-figure img").first
-            src_before = image.get_attribute("src")
-            page.screenshot(path=str(ARTIFACTS / "explorer_start.png"), full_page=True)
-            # set an exact speed in the text box beside the slider, then press Enter
+            assert readout.inner_text() == f"{dk.doppler_factor(0.24, 57 * u.deg):.5f}"
+            _check_figures(page, "01", 2)  # the explorer and the constraint plane
+            _shots(page, "01", "start")
             box = page.locator(".dk-speed-text input").first
-            box.fill("0.6")
-            box.press("Enter")
-            expected = f"{dk.doppler_factor(0.6, 57 * u.deg):.5f}"
-            expect(readout).to_have_text(expected, timeout=60_000)
-            page.wait_for_function(
-                "(before) => { const i = document.querySelector('img.dk-figure, .dk-figure img'); return i && i.src !== before; }",
-                arg=src_before,
-                timeout=60_000,
+
+            def enter():
+                box.fill("0.6")
+                box.press("Enter")
+
+            _image_changes(page, ".dk-explorer img.dk-figure", enter)
+            expect(readout).to_have_text(f"{dk.doppler_factor(0.6, 57 * u.deg):.5f}", timeout=60_000)
+            _shots(page, "01", "after")
+        finally:
+            browser.close()
+
+
+def test_notebook_02_fit_button_redraws_the_precession_explorer(serve):
+    from playwright.sync_api import expect, sync_playwright
+
+    url = serve("02")
+    with sync_playwright() as p:
+        browser, page = _open(p, url, ".dk-precession img.dk-figure")
+        try:
+            _check_figures(page, "02", 2)  # the model figure and the explorer
+            _shots(page, "02", "start")
+            _image_changes(page, ".dk-precession img.dk-figure", lambda: page.locator(".dk-precession .dk-fit").first.click())
+            # the message comes after the last redraw with the fitted values
+            expect(page.locator(".dk-precession").first).to_contain_text("fitted (curves drawn", timeout=120_000)
+            page.wait_for_timeout(1500)  # the last image reaches the page
+            _shots(page, "02", "after")
+        finally:
+            browser.close()
+
+
+def test_notebook_03_host_redshift_changes_the_outflow_reading(serve):
+    from playwright.sync_api import expect, sync_playwright
+
+    url = serve("03")
+    with sync_playwright() as p:
+        browser, page = _open(p, url, ".dk-outflow img.dk-figure")
+        try:
+            _check_figures(page, "03", 2)  # the line fit and the explorer's locus
+            _shots(page, "03", "start")
+            text = page.locator(".dk-outflow-text").first
+            before = text.inner_text()
+            box = page.locator(".dk-outflow-zhost input").first
+
+            def enter():
+                box.fill("0.8")
+                box.press("Enter")
+
+            _image_changes(page, ".dk-outflow img.dk-figure", enter)
+            expect(text).not_to_have_text(before, timeout=60_000)
+            _shots(page, "03", "after")
+        finally:
+            browser.close()
+
+
+def test_notebook_04_status_filter_changes_the_population_plane(serve):
+    from playwright.sync_api import expect, sync_playwright
+
+    url = serve("04")
+    with sync_playwright() as p:
+        browser, page = _open(p, url, ".dk-population img.dk-figure")
+        try:
+            _check_figures(page, "04", 3)  # the population figure, the explorer's plane and its spectrum
+            _shots(page, "04", "start")
+            button = page.locator(".dk-status button", has_text="suspect").first
+            spectrum = ".dk-population img.dk-population-spectrum"
+            before = page.locator(spectrum).first.get_attribute("src")
+            _image_changes(page, ".dk-population img.dk-figure", button.click)
+            expect(page.locator(".dk-population-detail").first).to_contain_text("suspect", timeout=120_000)
+            page.wait_for_function(  # the chosen suspect row's spectrum, measured again, replaces the first one
+                "([sel, before]) => { const i = document.querySelector(sel); return i && i.src !== before; }",
+                arg=[spectrum, before],
+                timeout=120_000,
             )
-            page.screenshot(path=str(ARTIFACTS / "explorer_beta_0.6.png"), full_page=True)
+            page.wait_for_timeout(1000)
+            _shots(page, "04", "after")
         finally:
             browser.close()
