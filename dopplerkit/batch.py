@@ -941,6 +941,7 @@ def run_batch(
     chunk_size: int = 100,
     quiet: bool = False,
     plot: str | None = None,
+    plot_fits: str | None = None,
     cluster_timeout: float = 60.0,
     out=None,
 ) -> tuple[int, object]:
@@ -971,6 +972,10 @@ def run_batch(
         No progress bar or summary line.
     plot : str, optional
         Also write the population figure to this path.
+    plot_fits : str, optional
+        Also draw every ``suspect`` row's spectrum with its fit and residuals
+        (:func:`measure_file`, :func:`dopplerkit.plotting.plot_line_fit`), one PNG per spectrum
+        in this directory (created if missing), named after the spectrum's path under SPECTRA_DIR.
     cluster_timeout : float
         Seconds to wait for a Dask scheduler and for at least one worker (exit code 3 after).
     out : file, optional
@@ -1026,7 +1031,51 @@ def run_batch(
         if not quiet:
             print(f"dopplerkit batch: created the output directory {output.parent}", file=out)
     with _OutputLock(output, out):
-        return _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out)
+        code, table = _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out)
+    if plot_fits and code in (EXIT_OK, EXIT_SOME_FAILED):
+        _plot_fits(table if table is not None else output, cfg, d, Path(plot_fits), quiet, out)
+    return code, table
+
+
+def _plot_fits(table, cfg, spectra_dir: Path, directory: Path, quiet: bool, out) -> int:
+    """One figure per suspect row (the spectrum measured again as the batch did, with its fit); returns the count drawn."""
+    import warnings
+
+    from astropy.table import Table
+    from matplotlib.figure import Figure
+
+    from .io import atomic_path
+    from .plotting import plot_line_fit
+
+    if not isinstance(table, Table):
+        table = Table.read(table)
+    directory.mkdir(parents=True, exist_ok=True)
+    root = spectra_dir.resolve()
+    n = 0
+    for r in table[np.asarray(table["status"]) == "suspect"]:
+        path = Path(str(r["file"]))
+        try:
+            rel = path.resolve().relative_to(root).as_posix()
+        except ValueError:
+            rel = path.name
+        target = directory / (slug(rel.rsplit(".", 1)[0]) + ".png")
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                spectrum, m = measure_file(path, cfg)
+                fig = plot_line_fit(spectrum, m, fig=Figure(figsize=(8.0, 4.6), layout="constrained"))
+            import textwrap
+
+            why = textwrap.shorten(str(r["message"]), 330, placeholder=" ...")
+            fig.suptitle("\n".join(textwrap.wrap(f"{rel}: suspect: {why}", 120)), fontsize=8, ha="left", x=0.01)
+            with atomic_path(target) as tmp:
+                fig.savefig(tmp, dpi=120, format="png")
+            n += 1
+        except Exception as exc:  # one figure that cannot be drawn never stops the others
+            print(f"dopplerkit batch: warning: no figure for {rel}: {type(exc).__name__}: {exc}", file=out)
+    if not quiet:
+        print(f"{n} figures of suspect rows in {directory}", file=out)
+    return n
 
 
 def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out):
@@ -1397,6 +1446,7 @@ def run_batch_cli(args) -> int:
             chunk_size=args.chunk_size,
             quiet=args.quiet,
             plot=args.plot,
+            plot_fits=args.plot_fits,
         )
     except ConfigError as exc:
         print(f"dopplerkit batch: error: {exc}", file=sys.stderr)

@@ -112,7 +112,13 @@ def _build_parser() -> argparse.ArgumentParser:
     )
     b.add_argument("--pattern", default=None, metavar="GLOB", help="only files matching this glob (default: every readable spectrum)")
     b.add_argument("--chunk-size", type=int, default=100, metavar="K", help="spectra per task (default 100)")
-    b.add_argument("--plot", default=None, metavar="SUMMARY.png", help="also write a summary figure")
+    b.add_argument("--plot", default=None, metavar="SUMMARY.png", help="also write the population figure (speed against viewing angle)")
+    b.add_argument(
+        "--plot-fits",
+        default=None,
+        metavar="DIR",
+        help="also draw every suspect row's spectrum with its fit and residuals, one PNG per spectrum in DIR",
+    )
     b.add_argument("--quiet", action="store_true", help="no progress bar or summary line")
 
     d = sub.add_parser(

@@ -143,6 +143,26 @@ class KinematicFit:
     def __str__(self) -> str:
         return self.report()
 
+    def plot(self, *, fig=None, path=None):
+        """Draw the fit: data, model and residuals (see :func:`dopplerkit.plotting.plot_kinematic_fit`).
+
+        Parameters
+        ----------
+        fig : matplotlib Figure, optional
+            Drawn into (cleared); a new one otherwise.
+        path : str, optional
+            Also written there (format from the extension).
+
+        Returns
+        -------
+        matplotlib.figure.Figure
+        """
+        # the one reference to a higher layer: a result draws itself, loading the plotting
+        # module only when asked (as lmfit's ModelResult.plot does)
+        from .plotting import plot_kinematic_fit
+
+        return plot_kinematic_fit(self, fig=fig, path=path)
+
     def _repr_html_(self) -> str:
         import html
 
@@ -411,7 +431,14 @@ def _fit_one_pair(za, zr, ea, er, relativistic=True, scale_errors=False):
         if (1 + za) * (1 + zr) < 1:
             notes.append("the pair is unphysical for equal-speed opposite jets ((1+z_a)(1+z_r) < 1): the fit leaves a residual")
     _quality(res, notes, scale_errors)
-    fit = KinematicFit(res.params, res, "jet-pair" if relativistic else "jet-pair (Galilean)", notes, {"z": data, "z_err": err}, residual)
+    fit = KinematicFit(
+        res.params,
+        res,
+        "jet-pair" if relativistic else "jet-pair (Galilean)",
+        notes,
+        {"z": data, "z_err": err, "labels": ["z approaching jet", "z receding jet"]},
+        residual,
+    )
     return fit
 
 
@@ -886,7 +913,18 @@ def fit_constraints(
     if res.ndata <= 1:
         notes.append("one measurement cannot fix two parameters: the result is one point of a degenerate curve (see redshift_locus)")
     _quality(res, notes, scale_errors)
-    return KinematicFit(res.params, res, "constraints" if relativistic else "constraints (Galilean)", notes, {}, residual)
+    labels = []  # one per residual, in the residual's order (for figures)
+    for i in range(len(zp)):
+        labels += [f"z pair {i + 1}: approaching", f"z pair {i + 1}: receding"]
+    labels += [f"single z {i + 1} ({j})" for i, (_z, _e, j) in enumerate(sz)]
+    for i in range(len(pm)):
+        labels += [f"proper motion {i + 1}: approaching", f"proper motion {i + 1}: receding"]
+    if pm:
+        labels.append("distance (its prior)")
+    labels += [f"flux ratio {i + 1}" for i in range(len(fr))]
+    labels += [f"prior on {k.replace('_', ' ')}" for k in ("beta", "viewing_angle") if k in priors]
+    model = "constraints" if relativistic else "constraints (Galilean)"
+    return KinematicFit(res.params, res, model, notes, {"labels": labels}, residual)
 
 
 # ---------------------------------------------------------------------------

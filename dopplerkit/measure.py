@@ -1847,11 +1847,59 @@ def _at_bound(par, rtol=1e-6):
     return False
 
 
-def _table(rows, setup, axis_unit, flux_unit, info, method):
-    from astropy.table import QTable
+def _line_table_class():
+    """LineTable, made on first use (astropy.table is imported only when a table is made)."""
+    global _LINE_TABLE
+    if _LINE_TABLE is None:
+        from astropy.table import QTable
 
+        class LineTable(QTable):
+            """The table :func:`measure_lines` returns: a QTable that can draw itself over its spectrum."""
+
+            _spectrum = None
+
+            def plot(self, spectrum=None, *, fig=None, path=None, pad_kms: float = 4000.0):
+                """Draw the measured lines over the spectrum: data, fitted lines, residuals.
+
+                Parameters
+                ----------
+                spectrum : specutils.Spectrum, optional
+                    The spectrum measured; default the one :func:`measure_lines` was given
+                    (kept with the table it returned, not with copies or slices of it).
+                fig, path, pad_kms
+                    As in :func:`dopplerkit.plotting.plot_line_fit`.
+
+                Returns
+                -------
+                matplotlib.figure.Figure
+                """
+                spec = spectrum if spectrum is not None else self._spectrum
+                if spec is None:
+                    raise ValueError("plot() needs the measured spectrum: table.plot(spectrum)")
+                # the one reference to a higher layer: a result draws itself, loading the
+                # plotting module only when asked (as lmfit's ModelResult.plot does)
+                from .plotting import plot_line_fit
+
+                return plot_line_fit(spec, self, fig=fig, path=path, pad_kms=pad_kms)
+
+        LineTable.__module__ = __name__
+        LineTable.__qualname__ = "LineTable"  # pickles and prints as dopplerkit.measure.LineTable
+        _LINE_TABLE = LineTable
+    return _LINE_TABLE
+
+
+_LINE_TABLE = None
+
+
+def __getattr__(name):
+    if name == "LineTable":  # built on first use: importing this module does not import astropy.table
+        return _line_table_class()
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def _table(rows, setup, axis_unit, flux_unit, info, method):
     kms = u.km / u.s
-    t = QTable()
+    t = _line_table_class()()
     t["line"] = [r["line"] for r in rows]
     t["component"] = [r["component"] for r in rows]
     t["rest"] = np.array([r["rest"] for r in rows]) * axis_unit
@@ -2004,8 +2052,8 @@ def measure_lines(
 
     Returns
     -------
-    astropy.table.QTable
-        Columns ``line``, ``component``, ``rest``, ``centre``, ``centre_err`` (axis unit),
+    LineTable (an astropy.table.QTable)
+        ``table.plot()`` draws it over the spectrum (data, fitted lines, residuals). Columns ``line``, ``component``, ``rest``, ``centre``, ``centre_err`` (axis unit),
         ``z``, ``z_err``, ``v_radial``, ``v_radial_err`` (km/s, relativistic radial speed,
         positive receding), ``fwhm``, ``fwhm_err`` (km/s), ``flux``, ``flux_err`` (flux unit x
         axis unit; negative for absorption), ``snr``, ``redchi``, ``p_value`` (chi-square
@@ -2053,5 +2101,6 @@ def measure_lines(
         r["flux"] *= fscale
         r["flux_err"] *= fscale
     t = _table(rows, setup, unit, spectrum.flux.unit, info, method)
+    t._spectrum = spectrum  # for t.plot(); not in meta, so never written to a file
     _warn_flags(t)
     return (t, extra) if return_result else t

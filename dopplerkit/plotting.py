@@ -8,7 +8,11 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["PALETTE", "plot_constraint_plane", "plot_line_fit", "plot_population", "plot_precession_fit"]
+__all__ = ["PALETTE", "plot_constraint_plane", "plot_kinematic_fit", "plot_line_fit", "plot_population", "plot_precession_fit"]
+
+#: chi-square above the minimum that bounds the joint 68.3% and 95.4% regions of two parameters
+#: (Press et al. 2007, Numerical Recipes 3rd ed., sec. 15.6.5, table of delta chi-square; from memory)
+DELTA_CHI2_2D = (2.30, 6.18)
 
 #: dopplerkit's own colours: approaching (blue-shifted) and receding (red-shifted) jets, neutral, highlight.
 PALETTE = {"approaching": "#2b6f9e", "receding": "#b5473a", "neutral": "#4d4d4d", "highlight": "#d9a21b", "band": "#8fb8a8"}
@@ -267,6 +271,135 @@ def plot_line_fit(spectrum, table, *, fig=None, path=None, pad_kms: float = 4000
     axr.set_ylabel("residual / error")
     kind = "wavelength" if unit.physical_type == "length" else ("energy" if unit.physical_type == "energy" else "frequency")
     axr.set_xlabel(f"{kind} ({unit.to_string()})")
+    if path:
+        fig.savefig(path, dpi=150)
+    return fig
+
+
+def plot_kinematic_fit(fit, *, fig=None, path=None, n_grid: int = 121):
+    """A kinematic fit drawn: where it lies in the speed-angle plane, a close view, and its residuals.
+
+    Left: the whole plane (speed 0-1, viewing angle 0-180 deg) with the joint 68.3% and 95.4%
+    regions (chi-square within 2.30 and 6.18 of the minimum, two parameters). Middle: the same
+    around the best fit (+-5 sigma), where the regions are visible however small. Right: each
+    measurement's residual (data - model) / error at the best fit. A precessing-jet fit is drawn
+    by :func:`plot_precession_fit` instead (redshift curves against time).
+
+    Parameters
+    ----------
+    fit : KinematicFit
+        From :func:`~dopplerkit.fitting.fit_jet_pair`, :func:`~dopplerkit.fitting.fit_constraints`
+        or :func:`~dopplerkit.fitting.fit_precessing_jet`.
+    fig : matplotlib Figure, optional
+        Drawn into (cleared); a new one otherwise.
+    path : str, optional
+        Also written there (format from the extension).
+    n_grid : int
+        Grid points per axis of the whole-plane view.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Notes
+    -----
+    Viewing angle in the observer's frame, 0 deg = the approaching jet moving straight at us.
+    With proper motions the distance is held at its best value on the grids (a conditional,
+    not a profiled, chi-square: the regions are a little too small when the distance matters).
+    """
+    from matplotlib.figure import Figure
+
+    from ._format import with_error
+
+    if "t" in fit.data:
+        return plot_precession_fit(fit, fig=fig, path=path)
+    if fit._residual is None or "viewing_angle" not in fit.params:
+        raise ValueError("plot_kinematic_fit needs a fit from fit_jet_pair, fit_constraints or fit_precessing_jet")
+    p = fit.params.copy()
+
+    def residuals(b, th):
+        """Every residual on a grid: shape (number of residuals, *grid shape)."""
+        out = None
+        for i, (bb, tt) in enumerate(zip(np.ravel(b), np.ravel(th), strict=True)):
+            p["eta"].set(value=float(np.arctanh(bb)))
+            p["viewing_angle"].set(value=float(tt))
+            r = np.asarray(fit._residual(p), float)
+            if out is None:
+                out = np.empty((r.size, np.size(b)))
+            out[:, i] = r
+        return out.reshape((-1, *np.shape(b)))
+
+    def chi2(b, th):
+        return np.sum(residuals(b, th) ** 2, axis=0)
+
+    b0, t0 = fit.beta, float(fit.value("viewing_angle"))
+    be, te = fit.beta_err, fit.error("viewing_angle")
+    c0 = float(fit.result.chisqr)
+    fig = fig or Figure(figsize=(10.0, 3.9), layout="constrained")
+    fig.clear()
+    ax, axz, axr = fig.subplots(1, 3, width_ratios=[1.15, 1.0, 1.0])
+    levels = [c0 + d for d in DELTA_CHI2_2D]
+    col = PALETTE["approaching"]
+    # whole plane
+    T, B = np.meshgrid(np.linspace(0.0, 180.0, n_grid), np.linspace(0.0, 0.995, n_grid))
+    R = residuals(B, T)
+    labels = list(fit.data.get("labels", [])) or [f"measurement {i + 1}" for i in range(R.shape[0])]
+    # each measurement alone: where it is met within 1 sigma (priors and the distance are not drawn)
+    colours = [PALETTE["receding"], PALETTE["highlight"], PALETTE["neutral"], PALETTE["band"]]
+    drawn = 0
+    for rk, name in zip(R, labels, strict=False):
+        if name.startswith(("prior", "distance")) or not (np.nanmin(rk) < 0 < np.nanmax(rk)):
+            continue
+        c = colours[drawn % len(colours)]
+        ax.contourf(T, B, np.abs(rk), levels=[0, 1], colors=[c], alpha=0.3)  # the band, where the grid resolves it
+        ax.contour(T, B, rk, levels=[0], colors=[c], linewidths=1.0)  # where it is met exactly: visible however narrow
+        ax.plot([], [], color=c, lw=1.5, label=name)
+        drawn += 1
+        if drawn == 6:
+            break
+    C = np.sum(R**2, axis=0)
+    ax.contourf(T, B, C, levels=[-np.inf, levels[0]], colors=[col], alpha=0.8)
+    ax.plot(t0, b0, "+", ms=10, mew=1.5, color="k", label="joint best fit")
+    ax.legend(fontsize=6.5, frameon=True, framealpha=0.85, loc="upper right")
+    ax.set_xlim(0, 180)
+    ax.set_ylim(0, 1)
+    ax.set_xlabel("viewing angle (deg; 0 = towards us)")
+    ax.set_ylabel(r"speed $\beta = v/c$")
+    ax.set_title("the whole plane: each measurement alone (1 sigma)", fontsize=8, loc="left")
+    # close view: +-5 sigma (or a small box when the errors are not finite)
+    db = 5 * be if np.isfinite(be) and be > 0 else 0.02
+    dt = 5 * te if np.isfinite(te) and te > 0 else 2.0
+    bl, bh = max(b0 - db, 0.0), min(b0 + db, 0.9999999)
+    tl, th = max(t0 - dt, 0.0), min(t0 + dt, 180.0)
+    Tz, Bz = np.meshgrid(np.linspace(tl, th, 61), np.linspace(bl, bh, 61))
+    Cz = chi2(Bz, Tz)
+    axz.contourf(Tz, Bz, Cz, levels=[-np.inf, levels[0], levels[1]], colors=[col, PALETTE["band"]], alpha=0.55)
+    axz.contour(Tz, Bz, Cz, levels=levels, colors=["k", "0.4"], linewidths=0.7)
+    axz.errorbar(t0, b0, xerr=te, yerr=be, fmt="o", ms=4, color="k", label="best fit +- 1 sigma (each alone)")
+    axz.plot([], [], color=col, lw=6, alpha=0.55, label="joint 68.3%")
+    axz.plot([], [], color=PALETTE["band"], lw=6, alpha=0.55, label="joint 95.4%")
+    axz.set_xlabel("viewing angle (deg)")
+    axz.set_ylabel(r"speed $\beta$")
+    axz.ticklabel_format(useOffset=True, style="plain")
+    axz.legend(fontsize=6.5, frameon=True, framealpha=0.85, loc="lower left", bbox_to_anchor=(0.0, 1.0), borderaxespad=0.2)
+    # residuals
+    p2 = fit.params.copy()
+    res = np.asarray(fit._residual(p2), float)
+    y = np.arange(res.size)[::-1]
+    axr.axvspan(-1, 1, color="0.9")
+    axr.axvline(0, color="0.6", lw=0.6)
+    axr.plot(res, y, "o", color=PALETTE["receding"])
+    axr.set_yticks(y, labels[: res.size], fontsize=7)
+    lim = max(3.0, float(np.nanmax(np.abs(res))) * 1.2 if res.size else 3.0)
+    axr.set_xlim(-lim, lim)
+    axr.set_ylim(-0.7, res.size - 0.3)
+    axr.set_xlabel("residual (data - model) / error")
+    r = fit.result
+    stat = f"chi2 {r.chisqr:.3g} for {r.nfree} dof" + (f", p = {fit.p_value:.2g}" if r.nfree > 0 else " (exactly determined)")
+    fig.suptitle(
+        f"{fit.model}: beta {with_error(b0, be)}, viewing angle {with_error(t0, te)} deg; {stat}",
+        fontsize=9,
+    )
     if path:
         fig.savefig(path, dpi=150)
     return fig

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import re
+from pathlib import Path
 
 import pytest
 
@@ -66,3 +67,25 @@ def test_calc_pair_and_single_z(capsys):
 def test_calc_errors(argv, match, capsys):
     assert main(argv) == 2
     assert re.search(match, capsys.readouterr().err)
+
+
+def test_batch_plot_fits_draws_each_suspect_row(tmp_path, capsys):
+    import shutil
+
+    from astropy.table import Table
+
+    from dopplerkit.demo import default_data_dir
+
+    survey = default_data_dir() / "survey"
+    src = tmp_path / "spectra"
+    src.mkdir()
+    for name in ("dkj_001.fits", "dkj_039.fits", "dkj_041.fits"):  # one ok and two suspect rows in the demo survey
+        shutil.copy(survey / "spectra" / name, src / name)
+    out = tmp_path / "r.ecsv"
+    code = main(
+        ["batch", str(src), "--config", str(survey / "config.toml"), "--output", str(out), "--plot-fits", str(tmp_path / "figs"), "--quiet"]
+    )
+    t = Table.read(out)
+    suspect = sorted(Path(str(f)).stem + ".png" for f, s in zip(t["file"], t["status"], strict=True) if s == "suspect")
+    assert code == (1 if suspect else 0)
+    assert sorted(p.name for p in (tmp_path / "figs").iterdir()) == suspect
