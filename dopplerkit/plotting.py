@@ -136,11 +136,11 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
             label=label,
         )
     ax.set_xlabel("viewing angle (deg, 0 = towards us)")
-    ax.set_ylabel(r"$\beta = v/c$")
+    ax.set_ylabel(r"speed $\beta = v/c$")
     ax.set_xlim(0, 180)
     ax.set_ylim(0, 1)
-    if bands or solution is not None:
-        ax.legend(frameon=True, framealpha=0.85, fontsize=7, loc="best")
+    if bands or solution is not None:  # above the plane, never over a band
+        ax.legend(frameon=False, fontsize=7, loc="lower left", bbox_to_anchor=(0.0, 1.0), borderaxespad=0.3)
     return fig
 
 

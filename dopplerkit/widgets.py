@@ -691,10 +691,13 @@ class ConstraintPlane:
         import ipywidgets as W
 
         self.state = state or PlaneState()
-        self.kind = W.Dropdown(options=list(PlaneState.KINDS), description="measurement")
-        self.values = W.Text(placeholder=PlaneState.KINDS[self.kind.value], description="values")
+        wide = {"description_width": "initial"}  # labels in full ("measurement", not "measure...")
+        self.kind = W.Dropdown(options=list(PlaneState.KINDS), description="measurement", style=wide)
+        self.values = W.Text(
+            placeholder=PlaneState.KINDS[self.kind.value], description="values", style=wide, layout=W.Layout(width="420px")
+        )
         self.add_button = W.Button(description="add", icon="plus")
-        self.listing = W.Select(options=[], rows=5, description="using")
+        self.listing = W.Select(options=[], rows=5, description="using", style=wide, layout=W.Layout(width="520px"))
         self.remove_button = W.Button(description="remove", icon="minus")
         self.solve_button = W.Button(description="joint solution", icon="crosshairs")
         self.message = W.HTML()
@@ -747,7 +750,7 @@ class ConstraintPlane:
         self.ax.clear()
         bands = [{"label": self.state.label(m), "chi2": self.state.chi2(m)} for m in self.state.measurements]
         plot_constraint_plane(bands, solution=self.state.solution, ax=self.ax, n_theta=181)
-        self.image.value = _render(self.fig)
+        self.image.value = _render_fresh(self.fig)  # the legend above the plane changes size
 
     def _ipython_display_(self):
         from IPython.display import display
@@ -1074,7 +1077,7 @@ class OutflowExplorer:
         ax.set_ylabel(r"speed $\beta = v/c$")
         ax.set_title(f"{s.line}: z = {r['z']:+.4f} in the host's frame", fontsize=9, loc="right")
         ax.legend(fontsize=7, frameon=False, loc="upper right")
-        self.image.value = _render(self.fig)
+        self.image.value = _render_fresh(self.fig)
 
     def _ipython_display_(self):
         from IPython.display import display
@@ -1270,7 +1273,7 @@ class PopulationExplorer:
         )
         if ax.get_legend_handles_labels()[1]:
             ax.legend(fontsize=7, frameon=False, loc="upper right")
-        self.image.value = _render(self.fig)
+        self.image.value = _render_fresh(self.fig)
 
     def show_row(self):
         """The chosen row in words and, with a configuration, its spectrum with the fit and residuals."""
@@ -1296,7 +1299,7 @@ class PopulationExplorer:
         if str(r["status"]) == "error":
             self.spec_fig.clear()
             self.spec_fig.text(0.5, 0.5, "no fit for a failed row (see its message above)", ha="center", fontsize=10)
-            self.spec_image.value = _render(self.spec_fig)
+            self.spec_image.value = _render_fresh(self.spec_fig)
             return
         import warnings
 
@@ -1310,7 +1313,6 @@ class PopulationExplorer:
         except Exception as exc:  # the file moved or cannot be read: say so in the panel
             self.detail.value = text + f"<br><span style='color:{PALETTE['receding']}'>cannot draw the spectrum: {exc}</span>"
             return
-        self.spec_fig.set_layout_engine("constrained")
         plot_line_fit(spec, m, fig=self.spec_fig)
         from pathlib import Path
 
@@ -1324,9 +1326,11 @@ class PopulationExplorer:
 
 
 def _render_fresh(fig) -> bytes:
-    """PNG bytes of a figure whose layout changes each time (constrained layout solved per draw)."""
+    """PNG bytes of a figure whose layout changes each time (legends, titles): constrained layout
+    solved on every draw (the slider views freeze theirs instead, see :func:`_agg`)."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
+    fig.set_layout_engine("constrained")
     canvas = fig.canvas if isinstance(fig.canvas, FigureCanvasAgg) else FigureCanvasAgg(fig)
     canvas.draw()
     return _png(canvas)
