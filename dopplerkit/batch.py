@@ -555,7 +555,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
                 "the wrong line configured, or raise beta_max"
             )
         row.update({"beta": b, "beta_err": be, "viewing_angle": th, "viewing_angle_err": te})
-    row["redchi"] = float(max(redchi)) if redchi else math.nan
+    row["chi2_reduced"] = float(max(redchi)) if redchi else math.nan
     row["p_value"] = float(min(pvals)) if pvals else math.nan
     row["continuum"] = "; ".join(conts)
     row["host"] = "; ".join(hosts)
@@ -864,7 +864,7 @@ _TAIL_COLUMNS = [
     "beta_err",
     "viewing_angle",
     "viewing_angle_err",
-    "redchi",
+    "chi2_reduced",
     "p_value",
     "continuum",
     "host",

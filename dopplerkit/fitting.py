@@ -31,6 +31,7 @@ from .kinematics import SPEED_OF_LIGHT_KMS, _counterjet_ratio, _dimensionless, _
 
 __all__ = [
     "KinematicFit",
+    "KinematicFits",
     "ModelComparison",
     "compare_models",
     "fit_constraints",
@@ -94,12 +95,42 @@ class KinematicFit:
 
     @property
     def viewing_angle(self) -> u.Quantity:
-        name = "viewing_angle" if "viewing_angle" in self.params else "inclination"
+        """Observer-frame viewing angle of the approaching jet (deg; 0 = straight at us).
+
+        A precessing-jet fit has none (it changes with phase): it has :attr:`inclination` and
+        :attr:`cone_angle` instead, and this raises AttributeError saying so.
+        """
+        if "viewing_angle" not in self.params:
+            raise AttributeError(
+                f"a {self.model} fit has no single viewing angle (it changes with the precession phase): "
+                "use .inclination (of the precession axis) and .cone_angle"
+            )
+        return self.params["viewing_angle"].value * u.deg
+
+    def _angle_param(self, name):
+        if name not in self.params:
+            raise AttributeError(f"a {self.model} fit has no {name} (only precessing-jet fits have): use .viewing_angle")
         return self.params[name].value * u.deg
 
     @property
-    def chisqr(self) -> float:
+    def inclination(self) -> u.Quantity:
+        """Precessing-jet fits: inclination of the precession axis to the line of sight (deg, 0 = along it)."""
+        return self._angle_param("inclination")
+
+    @property
+    def cone_angle(self) -> u.Quantity:
+        """Precessing-jet fits: half-opening angle of the precession cone (deg)."""
+        return self._angle_param("cone_angle")
+
+    @property
+    def chi2(self) -> float:
+        """Chi-square of the fit (lmfit's ``result.chisqr``)."""
         return float(self.result.chisqr)
+
+    @property
+    def dof(self) -> int:
+        """Degrees of freedom: data minus free parameters."""
+        return int(self.result.nfree)
 
     @property
     def p_value(self) -> float:
@@ -113,8 +144,28 @@ class KinematicFit:
         e = self.params[name].stderr
         return float("nan") if e is None else float(e)
 
-    def report(self) -> str:
-        """A readable report: parameters with uncertainties, fit statistics and notes."""
+    def correlations(self, min_correl: float = 0.0) -> dict:
+        """Correlation coefficients of the free parameters, {(name_1, name_2): r} with |r| >= ``min_correl``.
+
+        The speed is fitted as the rapidity ``eta``; beta = tanh(eta) is monotonic in it, so
+        (to first order) its correlations are those of ``eta``: they are listed under ``beta``.
+        """
+        out = {}
+        names = [n for n, p in self.params.items() if p.vary]
+        for i, a in enumerate(names):
+            cor = self.params[a].correl or {}
+            for b in names[i + 1 :]:
+                r = cor.get(b)
+                if r is not None and np.isfinite(r) and abs(r) >= min_correl:
+                    out[("beta" if a == "eta" else a, "beta" if b == "eta" else b)] = float(r)
+        return out
+
+    def fit_report(self, min_correl: float = 0.1) -> str:
+        """The report (:meth:`report`) with the correlations of the free parameters (|r| >= ``min_correl``)."""
+        return self.report(min_correl=min_correl)
+
+    def report(self, min_correl: float = 0.1) -> str:
+        """A readable report: parameters with uncertainties, correlations, fit statistics and notes."""
         lines = [f"dopplerkit {self.model} fit", "-" * 40]
         for name, p in self.params.items():
             if name == "eta":
@@ -131,6 +182,11 @@ class KinematicFit:
             )
         else:
             lines.append("  exactly determined (no degrees of freedom): the fit cannot test the model")
+        cor = self.correlations(min_correl)
+        if cor:
+            lines.append(f"  correlations (|r| >= {min_correl:g}):")
+            for (a, b), r in sorted(cor.items(), key=lambda kv: -abs(kv[1])):
+                lines.append(f"    {a} - {b}: {r:+.3f}")
         if self.posterior:
             lines.append("  posterior (emcee): median [16th, 84th percentile]")
             for k, v in self.posterior["summary"].items():
@@ -142,6 +198,19 @@ class KinematicFit:
 
     def __str__(self) -> str:
         return self.report()
+
+    def __repr__(self) -> str:
+        angles = (
+            f"viewing_angle={with_error(self.value('viewing_angle'), self.error('viewing_angle'), '+/-')} deg"
+            if "viewing_angle" in self.params
+            else f"inclination={self.value('inclination'):.4g} deg, cone_angle={self.value('cone_angle'):.4g} deg"
+        )
+        notes = f", {len(self.notes)} note{'s' if len(self.notes) != 1 else ''}" if self.notes else ""
+        return f"<KinematicFit {self.model}: beta={with_error(self.beta, self.beta_err, '+/-')}, {angles}, chi2={self.chi2:.4g}, dof={self.dof}{notes}>"
+
+    def table(self):
+        """The result as a one-row QTable (the columns of :meth:`KinematicFits.table`)."""
+        return fits_table([self])
 
     def plot(self, *, fig=None, path=None):
         """Draw the fit: data, model and residuals (see :func:`dopplerkit.plotting.plot_kinematic_fit`).
@@ -358,10 +427,11 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
 
     Returns
     -------
-    KinematicFit or list of KinematicFit
+    KinematicFit or KinematicFits
         Params ``beta`` (derived from the rapidity ``eta``), ``gamma`` (derived) and
-        ``viewing_angle`` (deg, 0 = approaching jet straight at us). One result per pair for
-        array input; :func:`fits_table` turns a list into a table.
+        ``viewing_angle`` (deg, 0 = approaching jet straight at us). For array input a
+        :class:`KinematicFits`: one fit per pair, with the same accessors returning arrays of
+        the input's shape; both have ``.table()``.
 
     Notes
     -----
@@ -392,10 +462,12 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
             raise ValueError(f"{name} must be a finite redshift > -1, got {float(arr.ravel()[np.flatnonzero(bad)[0]])!r}")
     if za.ndim == 0:
         return _fit_one_pair(float(za), float(zr), float(ea), float(er), relativistic, scale_errors)
-    return [
+    fits = KinematicFits(
         _fit_one_pair(float(a), float(r), float(e1), float(e2), relativistic, scale_errors)
         for a, r, e1, e2 in zip(za.ravel(), zr.ravel(), ea.ravel(), er.ravel(), strict=True)
-    ]
+    )
+    fits.shape = za.shape
+    return fits
 
 
 def _fit_one_pair(za, zr, ea, er, relativistic=True, scale_errors=False):
@@ -443,25 +515,88 @@ def _fit_one_pair(za, zr, ea, er, relativistic=True, scale_errors=False):
 
 
 def fits_table(fits):
-    """A QTable of beta, beta_err, gamma, viewing_angle, viewing_angle_err, chisqr, notes from a list of fits."""
+    """A QTable with one row per fit: beta, beta_err, gamma, the angles (deg), chi2, dof, p_value, notes.
+
+    Jet-pair and constraint fits give ``viewing_angle`` and ``viewing_angle_err``; precessing-jet
+    fits ``inclination``, ``cone_angle`` and their errors. Units are on the columns.
+    """
     from astropy.table import QTable
 
-    return QTable(
+    fits = list(fits)
+    cols = {
+        "model": [f.model for f in fits],
+        "beta": [f.beta for f in fits],
+        "beta_err": [f.beta_err for f in fits],
+        "gamma": [f.value("gamma") for f in fits],
+    }
+    for name in ("viewing_angle", "inclination", "cone_angle"):
+        if any(name in f.params for f in fits):
+            cols[name] = [f.value(name) if name in f.params else np.nan for f in fits] * u.deg
+            cols[f"{name}_err"] = [f.error(name) if name in f.params else np.nan for f in fits] * u.deg
+    cols.update(
         {
-            "beta": [f.beta for f in fits],
-            "beta_err": [f.beta_err for f in fits],
-            "gamma": [f.value("gamma") for f in fits],
-            "viewing_angle": [f.params["viewing_angle"].value for f in fits] * u.deg,
-            "viewing_angle_err": [f.error("viewing_angle") for f in fits] * u.deg,
-            "chisqr": [f.chisqr for f in fits],
+            "chi2": [f.chi2 for f in fits],
+            "dof": [f.dof for f in fits],
+            "p_value": [f.p_value for f in fits],
             "notes": ["; ".join(f.notes) for f in fits],
         }
     )
+    return QTable(cols)
 
 
-# ---------------------------------------------------------------------------
-# Precessing jets
-# ---------------------------------------------------------------------------
+class KinematicFits(list):
+    """Fits of many measurements (a list of :class:`KinematicFit`), with the same accessors as one.
+
+    ``beta``, ``beta_err``, ``value(name)``, ``error(name)``, ``p_value`` and ``chi2`` return
+    arrays in the shape of the input; ``viewing_angle`` a Quantity array; :meth:`table` one row
+    per fit.
+    """
+
+    shape: tuple = ()
+
+    def _arr(self, get):
+        return np.array([get(f) for f in self], float).reshape(self.shape or (len(self),))
+
+    @property
+    def beta(self) -> np.ndarray:
+        return self._arr(lambda f: f.beta)
+
+    @property
+    def beta_err(self) -> np.ndarray:
+        return self._arr(lambda f: f.beta_err)
+
+    @property
+    def viewing_angle(self) -> u.Quantity:
+        return self._arr(lambda f: f.viewing_angle.to_value(u.deg)) * u.deg
+
+    @property
+    def chi2(self) -> np.ndarray:
+        return self._arr(lambda f: f.chi2)
+
+    @property
+    def p_value(self) -> np.ndarray:
+        return self._arr(lambda f: f.p_value)
+
+    @property
+    def notes(self) -> list:
+        """The notes of each fit (a list of lists, in input order)."""
+        return [f.notes for f in self]
+
+    def value(self, name) -> np.ndarray:
+        return self._arr(lambda f: f.value(name))
+
+    def error(self, name) -> np.ndarray:
+        return self._arr(lambda f: f.error(name))
+
+    def table(self):
+        """One row per fit (see :func:`fits_table`)."""
+        return fits_table(self)
+
+    def __repr__(self) -> str:
+        n_notes = sum(1 for f in self if f.notes)
+        return f"<KinematicFits: {len(self)} fits (shape {self.shape or (len(self),)}), {n_notes} with notes; .table() for all>"
+
+
 def _precess_cos(t, incl, cone, period, t0):
     psi = 2 * np.pi * (t - t0) / period
     return np.sin(incl * _DEG) * np.sin(cone * _DEG) * np.cos(psi) + np.cos(incl * _DEG) * np.cos(cone * _DEG)
@@ -938,24 +1073,11 @@ class ModelComparison:
     galilean: KinematicFit
 
     def table(self):
-        from astropy.table import Table
-
-        rows = []
-        for f in (self.relativistic, self.galilean):
-            r = f.result
-            rows.append(
-                {
-                    "model": f.model,
-                    "chi2": r.chisqr,
-                    "dof": r.nfree,
-                    "aic": r.aic,
-                    "bic": r.bic,
-                    "beta": f.beta,
-                    "beta_err": f.beta_err,
-                    "angle": f.viewing_angle.to_value(u.deg),
-                }
-            )
-        return Table(rows=rows)
+        """Both fits side by side: the columns of :func:`fits_table` plus ``aic`` and ``bic``."""
+        t = fits_table([self.relativistic, self.galilean])
+        t.add_column([f.result.aic for f in (self.relativistic, self.galilean)], name="aic", index=t.colnames.index("p_value") + 1)
+        t.add_column([f.result.bic for f in (self.relativistic, self.galilean)], name="bic", index=t.colnames.index("aic") + 1)
+        return t
 
     @property
     def delta_chi2(self) -> float:
@@ -964,14 +1086,15 @@ class ModelComparison:
     def report(self) -> str:
         t = self.table()
         lines = ["relativistic vs Galilean reading of the same data", "-" * 50]
+        angle = "viewing_angle" if "viewing_angle" in t.colnames else "inclination"
         lines += [
-            f"  {row['model']:<28} chi2 {row['chi2']:.4g} (dof {row['dof']}), AIC {row['aic']:.4g}, BIC {row['bic']:.4g}, beta {with_error(row['beta'], row['beta_err'])}, angle {row['angle']:.3f} deg"
+            f"  {row['model']:<28} chi2 {row['chi2']:.4g} (dof {row['dof']}), AIC {row['aic']:.4g}, BIC {row['bic']:.4g}, "
+            f"beta {with_error(row['beta'], row['beta_err'])}, {angle.replace('_', ' ')} {row[angle].to_value(u.deg):.3f} deg"
             for row in t
         ]
         dbeta = self.galilean.beta - self.relativistic.beta
-        lines.append(
-            f"  Galilean minus relativistic: beta {dbeta:+.5f}, angle {(self.galilean.viewing_angle - self.relativistic.viewing_angle).to_value(u.deg):+.3f} deg"
-        )
+        da = (t[angle][1] - t[angle][0]).to_value(u.deg)
+        lines.append(f"  Galilean minus relativistic: beta {dbeta:+.5f}, {angle.replace('_', ' ')} {da:+.3f} deg")
         lines += [f"  note (Galilean): {n}" for n in self.galilean.notes if "Galilean reading is barely" in n]
         lines.append(
             f"  delta chi-square (Galilean - relativistic) = {self.delta_chi2:.4g}: "

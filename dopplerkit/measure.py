@@ -1917,7 +1917,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
     t["flux"] = np.array([r["flux"] for r in rows]) * fu
     t["flux_err"] = np.array([r["flux_err"] for r in rows]) * fu
     t["snr"] = np.array([r["snr"] for r in rows])
-    t["redchi"] = np.full(len(rows), info["redchi"])
+    t["chi2_reduced"] = np.full(len(rows), info["redchi"])
     t["p_value"] = np.full(len(rows), info["p_value"])
     t["status"] = [r["status"] for r in rows]
     t["flags"] = [",".join(r["flags"]) for r in rows]
@@ -2056,7 +2056,7 @@ def measure_lines(
         ``table.plot()`` draws it over the spectrum (data, fitted lines, residuals). Columns ``line``, ``component``, ``rest``, ``centre``, ``centre_err`` (axis unit),
         ``z``, ``z_err``, ``v_radial``, ``v_radial_err`` (km/s, relativistic radial speed,
         positive receding), ``fwhm``, ``fwhm_err`` (km/s), ``flux``, ``flux_err`` (flux unit x
-        axis unit; negative for absorption), ``snr``, ``redchi``, ``p_value`` (chi-square
+        axis unit; negative for absorption), ``snr``, ``chi2_reduced``, ``p_value`` (chi-square
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is
         flagged, else "suspect"), ``flags`` (comma-separated, see :data:`FLAGS`: "at_bound",
         "no_errors", "poor_fit", "not_detected", "faint", "blend", "id_contradicted", "unresolved", "edge") and

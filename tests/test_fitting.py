@@ -164,7 +164,7 @@ def test_relativistic_vs_galilean():
     # by the Galilean reading z = -/+ beta cos theta
     za, zr = dk.redshift(0.26, 79 * u.deg), dk.redshift(0.26, 101 * u.deg)
     c = compare_models("jet-pair", za, zr, 1e-3, 1e-3)
-    assert c.relativistic.chisqr < 1e-6
+    assert c.relativistic.chi2 < 1e-6
     assert c.delta_chi2 > 100
     assert "demand special relativity" in c.report()
     t = c.table()
@@ -277,3 +277,62 @@ def test_fit_constraints_refuses_bad_measurements(kwargs, match):
 def test_fit_jet_pair_refuses_impossible_redshift():
     with pytest.raises(ValueError, match=r"z_approaching must be a finite redshift > -1, got -1.5"):
         fit_jet_pair(-1.5, 0.1, 1e-3, 1e-3)
+
+
+def test_fit_report_gives_the_speed_angle_correlation():
+    # exactly determined pair: the covariance of (beta, theta) is J^-1 S J^-T with J the Jacobian
+    # of the two redshifts (Bevington & Robinson 2003, Data Reduction and Error Analysis, 3rd ed.,
+    # ch. 3, propagation of errors; from memory); the correlation is the same for eta = atanh(beta)
+    import astropy.units as u
+
+    import dopplerkit as dk
+    from dopplerkit.fitting import fit_jet_pair
+
+    b, th, ea, er = 0.24, 57.0, 1e-4, 2e-4
+    za, zr = dk.redshift(b, th), dk.redshift(b, 180 - th)
+    f = fit_jet_pair(za, zr, ea, er)
+    h = 1e-7
+    J = np.empty((2, 2))
+    for j, (db, dt) in enumerate(((h, 0.0), (0.0, h))):
+        up = [dk.redshift(b + db, th + dt), dk.redshift(b + db, 180 - th - dt)]
+        dn = [dk.redshift(b - db, th - dt), dk.redshift(b - db, 180 - th + dt)]
+        J[:, j] = (np.array(up) - np.array(dn)) / (2 * h)
+    Ji = np.linalg.inv(J)
+    cov = Ji @ np.diag([ea**2, er**2]) @ Ji.T
+    r = cov[0, 1] / np.sqrt(cov[0, 0] * cov[1, 1])
+    got = f.correlations()[("beta", "viewing_angle")]
+    assert_allclose(got, r, atol=2e-3)
+    text = f.fit_report()
+    assert "correlations" in text and f"beta - viewing_angle: {got:+.3f}" in text
+    assert len(repr(f)) < 200 and repr(f).startswith("<KinematicFit jet-pair: beta=")
+    assert f.table()["viewing_angle"].unit == u.deg and f.table()["chi2"][0] == f.chi2
+
+
+def test_array_pairs_give_a_collection_with_the_same_accessors():
+    import dopplerkit as dk
+    from dopplerkit.fitting import KinematicFits, fit_jet_pair
+
+    b = np.array([[0.1, 0.2], [0.3, 0.4]])
+    th = np.full_like(b, 60.0)
+    fits = fit_jet_pair(dk.redshift(b, th), dk.redshift(b, 180 - th), 1e-4, 1e-4)
+    assert isinstance(fits, KinematicFits) and len(fits) == 4
+    assert fits.beta.shape == (2, 2)
+    assert_allclose(fits.beta, b, rtol=1e-6)
+    assert fits.viewing_angle.shape == (2, 2)
+    t = fits.table()
+    assert len(t) == 4 and {"beta", "viewing_angle", "chi2", "dof", "p_value"} <= set(t.colnames)
+    assert "4 fits" in repr(fits)
+
+
+def test_precessing_fit_has_inclination_and_cone_angle_not_a_viewing_angle():
+    import dopplerkit as dk
+    from dopplerkit.fitting import fit_precessing_jet
+
+    t = 60000.0 + np.linspace(0.0, 300.0, 40)
+    z1, z2 = dk.models.precessing_jet_redshifts(t, 0.24, 68, 23, 121.7, 60012.3)
+    f = fit_precessing_jet(t, z1, z2, 1e-5)
+    assert abs(f.inclination.to_value("deg") - 68) < 0.1 or abs(f.cone_angle.to_value("deg") - 68) < 0.1
+    with pytest.raises(AttributeError, match="no single viewing angle"):
+        _ = f.viewing_angle
+    assert "inclination" in f.table().colnames and "viewing_angle" not in f.table().colnames
+    assert "inclination=" in repr(f)
