@@ -18,6 +18,7 @@ Scenarios
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from pathlib import Path
 
@@ -47,8 +48,25 @@ SURVEY = {"n": 200, "seed": 4242, "beta_range": (0.05, 0.30), "angle_range_deg":
 
 
 def default_data_dir() -> Path:
-    """``data_demo/`` of the source tree (the demo data live beside the package)."""
-    return Path(__file__).resolve().parent.parent / "data_demo"
+    """Where the demo data are (or will be generated): never inside an installed package.
+
+    1. ``$DOPPLERKIT_DATA_DIR`` when set;
+    2. ``data_demo/`` beside the package in a source tree (a git clone, an editable install);
+    3. otherwise (a wheel in site-packages) ``$XDG_CACHE_HOME/dopplerkit/data_demo``, by default
+       ``~/.cache/dopplerkit/data_demo``: :func:`run_demo` generates the data there on first use.
+    """
+    return _choose_data_dir(Path(__file__).resolve().parent, os.environ)
+
+
+def _choose_data_dir(package_dir: Path, environ) -> Path:
+    if environ.get("DOPPLERKIT_DATA_DIR"):
+        return Path(environ["DOPPLERKIT_DATA_DIR"])
+    tree = package_dir.parent / "data_demo"
+    installed = any(part in ("site-packages", "dist-packages") for part in package_dir.parts)
+    if not installed and tree.is_dir():
+        return tree
+    cache = Path(environ["XDG_CACHE_HOME"]) if environ.get("XDG_CACHE_HOME") else Path.home() / ".cache"
+    return cache / "dopplerkit" / "data_demo"
 
 
 # ---------------------------------------------------------------------------

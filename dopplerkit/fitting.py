@@ -263,6 +263,10 @@ class KinematicFit:
         """
         import lmfit
 
+        from ._optional import require
+
+        require("emcee", "KinematicFit.sample (posterior sampling)")
+        require("pandas", "KinematicFit.sample (lmfit's chain table)")
         if self._residual is None:
             raise ValueError("this fit has no residual function to sample")
         params = self.params.copy()

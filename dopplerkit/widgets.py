@@ -46,6 +46,13 @@ PIXEL_RATIO = 2
 _CSS_DPI = 96
 
 
+def _widgets():
+    """ipywidgets, or an ImportError naming the extra that installs it."""
+    from ._optional import require
+
+    return require("ipywidgets", "dopplerkit.widgets")
+
+
 def _figure(width_in: float, height_in: float):
     """A figure rendered at PIXEL_RATIO x 96 dpi (shown at 96 css px per inch by :func:`_image`)."""
     from matplotlib.figure import Figure
@@ -55,7 +62,7 @@ def _figure(width_in: float, height_in: float):
 
 def _image(fig):
     """An image widget showing ``fig`` at its nominal size in CSS pixels, never wider than the page."""
-    import ipywidgets as W
+    W = _widgets()
 
     w = int(fig.get_figwidth() * _CSS_DPI)
     img = W.Image(format="png", layout=W.Layout(width=f"{w}px", max_width="100%", height="auto"))
@@ -289,7 +296,7 @@ class SpectrumExplorer:
     """
 
     def __init__(self, spectrum=None, lines=("H-alpha", "He I 5876", "H-beta"), observed=None, state: ExplorerState | None = None):
-        import ipywidgets as W
+        W = _widgets()
 
         if state is None:
             state = ExplorerState.from_spectrum(spectrum, lines) if spectrum is not None else ExplorerState.synthetic(lines)
@@ -688,7 +695,7 @@ class ConstraintPlane:
     """The beta-viewing angle plane: measurement bands (1 sigma shaded, 2 sigma outlined) and the joint solution."""
 
     def __init__(self, state: PlaneState | None = None):
-        import ipywidgets as W
+        W = _widgets()
 
         self.state = state or PlaneState()
         wide = {"description_width": "initial"}  # labels in full ("measurement", not "measure...")
@@ -803,7 +810,7 @@ class PrecessionExplorer:
     """Model curves of two precessing jets over time-series data, five sliders, a fit button, residuals."""
 
     def __init__(self, state: PrecessionState):
-        import ipywidgets as W
+        W = _widgets()
 
         self.state = s = state
         span = float(np.ptp(s.t)) or 1.0
@@ -1004,7 +1011,7 @@ class OutflowExplorer:
     the relativistic and linear readings, and the locus of (speed, viewing angle) out."""
 
     def __init__(self, state: OutflowState | None = None, lines=None):
-        import ipywidgets as W
+        W = _widgets()
 
         from .lines import catalogue
 
@@ -1148,7 +1155,7 @@ class PopulationExplorer:
     RATIOS = (10.0, 100.0)
 
     def __init__(self, table, config=None, truth=None):
-        import ipywidgets as W
+        W = _widgets()
 
         self.state = PopulationState(table)
         self.config = config

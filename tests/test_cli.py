@@ -89,3 +89,34 @@ def test_batch_plot_fits_draws_each_suspect_row(tmp_path, capsys):
     suspect = sorted(Path(str(f)).stem + ".png" for f, s in zip(t["file"], t["status"], strict=True) if s == "suspect")
     assert code == (1 if suspect else 0)
     assert sorted(p.name for p in (tmp_path / "figs").iterdir()) == suspect
+
+
+def test_demo_data_never_inside_an_installed_package(tmp_path):
+    # a wheel in site-packages gets its demo data in the user's cache (or DOPPLERKIT_DATA_DIR),
+    # a source tree uses its data_demo/ (common practice, no source: XDG base directories)
+    from dopplerkit.demo import _choose_data_dir, default_data_dir
+
+    site = tmp_path / "lib" / "python3.11" / "site-packages" / "dopplerkit"
+    site.mkdir(parents=True)
+    (site.parent / "data_demo").mkdir()  # even if something called data_demo sits there
+    assert _choose_data_dir(site, {"XDG_CACHE_HOME": str(tmp_path / "cache")}) == tmp_path / "cache" / "dopplerkit" / "data_demo"
+    assert _choose_data_dir(site, {"DOPPLERKIT_DATA_DIR": str(tmp_path / "mine")}) == tmp_path / "mine"
+    tree = tmp_path / "src" / "dopplerkit"
+    tree.mkdir(parents=True)
+    (tree.parent / "data_demo").mkdir()
+    assert _choose_data_dir(tree, {}) == tree.parent / "data_demo"
+    assert default_data_dir().name == "data_demo"
+
+
+def test_optional_packages_name_their_extra(monkeypatch):
+    import sys
+
+    from dopplerkit._optional import require
+    from dopplerkit.widgets import _widgets
+
+    monkeypatch.setitem(sys.modules, "emcee", None)  # None in sys.modules: the import fails, as if not installed
+    monkeypatch.setitem(sys.modules, "ipywidgets", None)
+    with pytest.raises(ImportError, match=r"pip install 'dopplerkit\[posterior\]'"):
+        require("emcee", "posterior sampling")
+    with pytest.raises(ImportError, match=r"dopplerkit\.widgets needs the optional package 'ipywidgets'.*dopplerkit\[notebook\]"):
+        _widgets()
