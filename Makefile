@@ -6,7 +6,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test lint format bench clean
+.PHONY: demo test docs lint format bench clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -23,6 +23,12 @@ test: $(STAMP)
 	$(BIN)/ruff check dopplerkit tests benchmarks
 	$(BIN)/python -m pytest
 
+## docs: the documentation site (warnings are errors), then its examples as doctests
+docs: $(STAMP)
+	$(BIN)/sphinx-build -W --keep-going -q -b html docs docs/_build/html
+	$(BIN)/sphinx-build -W --keep-going -q -b doctest docs docs/_build/doctest
+	@echo "open docs/_build/html/index.html"
+
 lint: $(STAMP)
 	$(BIN)/ruff check dopplerkit tests benchmarks
 	$(BIN)/ruff format --check dopplerkit tests benchmarks
@@ -35,4 +41,4 @@ bench: $(STAMP)
 	for f in benchmarks/bench_*.py; do $(BIN)/python $$f || exit 1; done
 
 clean:
-	rm -rf $(VENV) .pytest_cache .ruff_cache results test-artifacts
+	rm -rf $(VENV) .pytest_cache .ruff_cache results test-artifacts docs/_build docs/gallery

@@ -145,7 +145,7 @@ class KinematicFit:
         return float("nan") if e is None else float(e)
 
     def correlations(self, min_correl: float = 0.0) -> dict:
-        """Correlation coefficients of the free parameters, {(name_1, name_2): r} with |r| >= ``min_correl``.
+        """Correlation coefficients of the free parameters, {(name_1, name_2): r} with abs(r) >= ``min_correl``.
 
         The speed is fitted as the rapidity ``eta``; beta = tanh(eta) is monotonic in it, so
         (to first order) its correlations are those of ``eta``: they are listed under ``beta``.
@@ -161,7 +161,7 @@ class KinematicFit:
         return out
 
     def fit_report(self, min_correl: float = 0.1) -> str:
-        """The report (:meth:`report`) with the correlations of the free parameters (|r| >= ``min_correl``)."""
+        """The report (:meth:`report`) with the correlations of the free parameters (abs(r) >= ``min_correl``)."""
         return self.report(min_correl=min_correl)
 
     def report(self, min_correl: float = 0.1) -> str:

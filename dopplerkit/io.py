@@ -2,13 +2,13 @@
 
 Formats (``FORMATS``), chosen once per directory and passed explicitly to the reader:
 
-``tabular-fits``  FITS binary table in HDU 1 (columns as below); plain tables of scalar
-                  float/integer columns are read straight into numpy, anything with scaled
-                  (TSCALn/TZEROn, unsigned), null-flagged (TNULLn), array (TDIMn) or heap
-                  columns by astropy.io.fits, which applies those keywords;
-``wcs1d-fits``    FITS image with a linear 1-D WCS, read with astropy.io.fits;
-``ecsv``          astropy ECSV table;
-``ascii``         plain text or CSV with a header line.
+- ``tabular-fits``: FITS binary table in HDU 1 (columns as below); plain tables of scalar
+  float/integer columns are read straight into numpy, anything with scaled (TSCALn/TZEROn,
+  unsigned), null-flagged (TNULLn), array (TDIMn) or heap columns by astropy.io.fits, which
+  applies those keywords;
+- ``wcs1d-fits``: FITS image with a linear 1-D WCS, read with astropy.io.fits;
+- ``ecsv``: astropy ECSV table;
+- ``ascii``: plain text or CSV with a header line.
 
 Table columns are found by name, case-insensitively: the axis is ``wavelength``,
 ``frequency`` or ``energy`` (also ``wave``, ``lambda``, ``freq``); the flux is ``flux``;

@@ -799,7 +799,7 @@ def velocity_readings(z: ArrayLike):
         the smallest speed that gives z is the radial one, ``beta_radial``; every angle
         between 90 and 180 deg needs a speed between the two);
         ``cz_error`` and ``radio_error`` (fractional offsets of the linear readings from the
-        relativistic one, (v - v_rel)/|v_rel|).
+        relativistic one, (v - v_rel)/abs(v_rel)).
 
     Notes
     -----
