@@ -20,7 +20,7 @@ demo: $(STAMP)
 
 ## test: run the whole test suite (lint included)
 test: $(STAMP)
-	$(BIN)/ruff check dopplerkit tests benchmarks
+	$(BIN)/ruff check dopplerkit tests benchmarks examples docs/conf.py
 	$(BIN)/python -m pytest
 
 ## docs: the documentation site (warnings are errors), then its examples as doctests
@@ -30,12 +30,12 @@ docs: $(STAMP)
 	@echo "open docs/_build/html/index.html"
 
 lint: $(STAMP)
-	$(BIN)/ruff check dopplerkit tests benchmarks
-	$(BIN)/ruff format --check dopplerkit tests benchmarks
+	$(BIN)/ruff check dopplerkit tests benchmarks examples docs/conf.py
+	$(BIN)/ruff format --check dopplerkit tests benchmarks examples docs/conf.py
 
 format: $(STAMP)
-	$(BIN)/ruff format dopplerkit tests benchmarks
-	$(BIN)/ruff check --fix dopplerkit tests benchmarks
+	$(BIN)/ruff format dopplerkit tests benchmarks examples docs/conf.py
+	$(BIN)/ruff check --fix dopplerkit tests benchmarks examples docs/conf.py
 
 bench: $(STAMP)
 	for f in benchmarks/bench_*.py; do $(BIN)/python $$f || exit 1; done

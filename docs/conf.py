@@ -4,7 +4,7 @@ import os
 import sys
 
 sys.path.insert(0, os.path.abspath(".."))
-import dopplerkit  # noqa: E402
+import dopplerkit
 
 project = "dopplerkit"
 author = "the dopplerkit developers"

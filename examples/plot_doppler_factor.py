@@ -6,13 +6,13 @@ How the Doppler factor and the redshift of a jet change with the viewing angle f
 and where the transverse Doppler effect leaves a redshift at 90 degrees.
 """
 
+import matplotlib.pyplot as plt
 import numpy as np
-from matplotlib.figure import Figure
 
 import dopplerkit as dk
 
 theta = np.linspace(0.0, 180.0, 361)
-fig = Figure(figsize=(8, 3.4), layout="constrained")
+fig = plt.figure(figsize=(8, 3.4), layout="constrained")
 ax1, ax2 = fig.subplots(1, 2)
 for beta in (0.1, 0.26, 0.5, 0.9):
     ax1.semilogy(theta, dk.doppler_factor(beta, theta), label=f"beta = {beta}")
@@ -23,4 +23,4 @@ ax2.axvline(90, color="0.6", lw=0.8, ls=":")
 ax2.set_xlabel("viewing angle (deg; 0 = towards us)")
 ax2.set_ylabel("redshift z")
 ax2.legend(fontsize=8, frameon=False)
-fig
+plt.show()

@@ -8,6 +8,8 @@ then the speed and viewing angle fitted, drawn with the joint regions and the re
 
 import warnings
 
+import matplotlib.pyplot as plt
+
 from dopplerkit.demo import default_data_dir
 from dopplerkit.fitting import fit_jet_pair
 from dopplerkit.io import read_spectrum
@@ -17,10 +19,12 @@ warnings.simplefilter("ignore")
 spectrum = read_spectrum(default_data_dir() / "binary_dkx1" / "fits" / "dkx1_005.fits")
 t = measure_lines(spectrum, ["H-alpha", "He I 5876"], components=2, tie=True, method="fast")
 print(t["line", "component", "z", "z_err", "status"])
-t.plot()
+t.plot(fig=plt.figure(figsize=(8, 4.6), layout="constrained"))  # the library draws into the figure it is given
+plt.show()
 
 # %%
 # The fit of the pair: the whole speed-angle plane, a close view, and the residuals.
 fit = fit_jet_pair(t["z"][0], t["z"][2], t["z_err"][0], t["z_err"][2])
 print(fit.fit_report())
-fit.plot()
+fit.plot(fig=plt.figure(figsize=(8, 4.6), layout="constrained"))  # the library draws into the figure it is given
+plt.show()

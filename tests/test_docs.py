@@ -29,4 +29,5 @@ def test_docs_build_without_warnings(builder, tmp_path):
     if builder == "html":
         assert "fit_jet_pair" in (tmp_path / "html" / "api" / "fitting.html").read_text()  # generated from the docstrings
         assert "measure_lines" in (tmp_path / "html" / "api" / "measure.html").read_text()
-        assert (tmp_path / "html" / "gallery" / "index.html").exists()
+        for page in ("plot_doppler_factor", "plot_jet_pair_fit", "plot_outflow_reading"):  # each example shows its figures
+            assert "sphx_glr_" + page + "_001.png" in (tmp_path / "html" / "gallery" / f"{page}.html").read_text()
