@@ -119,6 +119,7 @@ class BatchConfig:
     host_z: float = 0.0
 
     def as_dict(self) -> dict:
+        """The configuration as a plain dict (what workers receive)."""
         return {k: (list(map(dict, v)) if k == "lines" else list(v) if isinstance(v, tuple) else v) for k, v in self.__dict__.items()}
 
     @property
@@ -157,7 +158,21 @@ def _number(where, section, key, value, *, lo=None, hi=None, lo_open=False, inte
 
 
 def load_config(path: str | Path) -> BatchConfig:
-    """Read and validate a TOML batch configuration. See the module docs for the keys."""
+    """Read and validate a TOML batch configuration. See the module docs for the keys.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    BatchConfig
+
+    Raises
+    ------
+    ConfigError
+        A missing file, bad TOML, an unknown key (with a suggestion) or a bad value (naming it).
+    """
     path = Path(path)
     if not path.is_file():
         _err(f"configuration file {str(path)!r} does not exist")
@@ -333,7 +348,19 @@ def slug(text: str) -> str:
 # File discovery
 # ---------------------------------------------------------------------------
 def find_spectra(directory: str | Path, pattern: str | None = None) -> list[Path]:
-    """Every spectrum file under ``directory`` (recursive), sorted; ``pattern`` is a glob on the relative path or name."""
+    """Every spectrum file under ``directory`` (recursive), sorted; ``pattern`` is a glob on the relative path or name.
+
+    Parameters
+    ----------
+    directory : str or Path
+    pattern : str, optional
+        Glob on the path relative to ``directory`` or on the file name (default: every known
+        spectrum extension).
+
+    Returns
+    -------
+    list of Path
+    """
     return [Path(p) for p in _walk_spectra(str(directory), pattern)]
 
 
@@ -397,6 +424,18 @@ def jet_pair_closed_form(za, zr, ea, er):
     Gamma = (2 + z_a + z_r)/2, cos theta = (z_r - z_a)/(2 Gamma beta) (Margon 1984, ARA&A 22,
     507); the Jacobian of this exactly determined map gives the same errors as the lmfit fit
     of :func:`dopplerkit.fitting.fit_jet_pair` (a test checks it). NaN where unphysical.
+
+    Parameters
+    ----------
+    za, zr : float
+        Redshifts of the approaching and receding jet.
+    ea, er : float
+        Their 1-sigma errors.
+
+    Returns
+    -------
+    tuple of float
+        (beta, beta_err, theta_deg, theta_err_deg).
     """
     g = 0.5 * (2.0 + za + zr)
     gm1 = 0.5 * (za + zr)
@@ -621,7 +660,21 @@ def measure_file(path: str | Path, config) -> tuple:
 
 
 def process_chunk(paths: list[str], fmts: list[str | None], cfg: dict) -> list[dict]:
-    """Fit a chunk of files; plain rows out. Never raises for a bad file: it becomes an error row."""
+    """Fit a chunk of files; plain rows out. Never raises for a bad file: it becomes an error row.
+
+    Parameters
+    ----------
+    paths : list of str
+    fmts : list of str or None
+        Format of each file (None: detect it).
+    cfg : dict
+        ``BatchConfig.as_dict()``.
+
+    Returns
+    -------
+    list of dict
+        One row per file (the columns of the result table).
+    """
 
     from threadpoolctl import threadpool_limits
 

@@ -86,10 +86,12 @@ class KinematicFit:
 
     @property
     def beta(self) -> float:
+        """Bulk speed v/c (derived from the fitted rapidity eta = artanh(beta))."""
         return float(self.params["beta"].value)
 
     @property
     def beta_err(self) -> float:
+        """1-sigma uncertainty of beta (NaN when the fit gives none)."""
         e = self.params["beta"].stderr
         return float("nan") if e is None else float(e)
 
@@ -138,9 +140,11 @@ class KinematicFit:
         return _p_value(self.result)
 
     def value(self, name):
+        """Best-fit value of a parameter by name (angles in deg, period and t0 in days)."""
         return self.params[name].value
 
     def error(self, name):
+        """1-sigma uncertainty of a parameter by name (NaN when the fit gives none)."""
         e = self.params[name].stderr
         return float("nan") if e is None else float(e)
 
@@ -523,6 +527,14 @@ def fits_table(fits):
 
     Jet-pair and constraint fits give ``viewing_angle`` and ``viewing_angle_err``; precessing-jet
     fits ``inclination``, ``cone_angle`` and their errors. Units are on the columns.
+
+    Parameters
+    ----------
+    fits : iterable of KinematicFit
+
+    Returns
+    -------
+    astropy.table.QTable
     """
     from astropy.table import QTable
 
@@ -563,22 +575,27 @@ class KinematicFits(list):
 
     @property
     def beta(self) -> np.ndarray:
+        """Speeds v/c, in the shape of the input."""
         return self._arr(lambda f: f.beta)
 
     @property
     def beta_err(self) -> np.ndarray:
+        """Their 1-sigma uncertainties."""
         return self._arr(lambda f: f.beta_err)
 
     @property
     def viewing_angle(self) -> u.Quantity:
+        """Viewing angles of the approaching jets (deg; 0 = straight at us)."""
         return self._arr(lambda f: f.viewing_angle.to_value(u.deg)) * u.deg
 
     @property
     def chi2(self) -> np.ndarray:
+        """Chi-square of each fit."""
         return self._arr(lambda f: f.chi2)
 
     @property
     def p_value(self) -> np.ndarray:
+        """Chi-square probability of each fit (NaN when exactly determined)."""
         return self._arr(lambda f: f.p_value)
 
     @property
@@ -587,9 +604,11 @@ class KinematicFits(list):
         return [f.notes for f in self]
 
     def value(self, name) -> np.ndarray:
+        """Best-fit values of a parameter, in the shape of the input."""
         return self._arr(lambda f: f.value(name))
 
     def error(self, name) -> np.ndarray:
+        """1-sigma uncertainties of a parameter, in the shape of the input."""
         return self._arr(lambda f: f.error(name))
 
     def table(self):
@@ -1085,9 +1104,11 @@ class ModelComparison:
 
     @property
     def delta_chi2(self) -> float:
+        """Chi-square of the Galilean fit minus that of the relativistic one (> 25: the data demand relativity)."""
         return float(self.galilean.result.chisqr - self.relativistic.result.chisqr)
 
     def report(self) -> str:
+        """Both readings side by side, their difference and what delta chi-square says."""
         t = self.table()
         lines = ["relativistic vs Galilean reading of the same data", "-" * 50]
         angle = "viewing_angle" if "viewing_angle" in t.colnames else "inclination"
@@ -1124,6 +1145,17 @@ def compare_models(kind: str, *args, **kwargs) -> ModelComparison:
 
     ``kind`` is "jet-pair" (arguments of :func:`fit_jet_pair`, scalars), "precessing-jet"
     (of :func:`fit_precessing_jet`) or "constraints" (of :func:`fit_constraints`).
+
+    Parameters
+    ----------
+    kind : {"jet-pair", "precessing-jet", "constraints"}
+    *args, **kwargs
+        Passed to the fitting function of that kind (without ``relativistic``).
+
+    Returns
+    -------
+    ModelComparison
+        ``.relativistic`` and ``.galilean`` fits, ``.table()``, ``.delta_chi2``, ``.report()``.
     """
     funcs = {"jet-pair": fit_jet_pair, "precessing-jet": fit_precessing_jet, "constraints": fit_constraints}
     if kind not in funcs:

@@ -119,7 +119,22 @@ class SpectrumArrays:
 
 
 def detect_format(path: str | Path) -> str:
-    """Format name of a spectrum file, from its extension (and HDU 1 for FITS)."""
+    """Format name of a spectrum file, from its extension (and HDU 1 for FITS).
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    str
+        One of ``FORMATS``.
+
+    Raises
+    ------
+    SpectrumReadError
+        Unknown extension, or a FITS file that is neither a table nor a 1-D image.
+    """
     p = str(path).lower()
     if p.endswith(_FITS_EXT):
         quick = _quick_fits_kind(path)
@@ -521,7 +536,21 @@ def _read_wcs1d(hdul, path, spectral_unit, flux_unit):
 
 
 def read_spectrum(path, fmt=None, **kwargs):
-    """Read a file into a :class:`specutils.Spectrum` (see :func:`read_arrays`)."""
+    """Read a file into a :class:`specutils.Spectrum` (see :func:`read_arrays`).
+
+    Parameters
+    ----------
+    path : str or Path
+    fmt : str, optional
+        One of ``FORMATS`` (default: from :func:`detect_format`).
+    **kwargs
+        ``spectral_unit``, ``flux_unit``, ``medium``: as in :func:`read_arrays`.
+
+    Returns
+    -------
+    specutils.Spectrum
+        With its uncertainty, a mask for null or NaN pixels, and ``meta["medium"]``.
+    """
     return read_arrays(path, fmt, **kwargs).to_spectrum()
 
 
@@ -552,6 +581,20 @@ def write_spectrum(spectrum, path: str | Path, *, layout: str | None = None, dty
 
     The wavelength medium (``meta["medium"]``) is kept: keyword MEDIUM (tabular FITS),
     CTYPE1 AWAV/WAVE (1-D WCS), table meta (ECSV).
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    path : str or Path
+        Format from the extension: .fits, .ecsv or .csv.
+    layout : {"tabular-fits", "wcs1d-fits"}, optional
+        FITS layout (default a binary table).
+    dtype : str
+        Data type of the stored columns (default float32).
+
+    Returns
+    -------
+    Path
     """
     from astropy.io import fits
     from astropy.table import Table

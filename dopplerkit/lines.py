@@ -90,7 +90,16 @@ class Line:
 
 
 def normalise_name(name: str) -> str:
-    """Case- and punctuation-tolerant key: ``"H-alpha"``, ``"Halpha"``, ``"H alpha"`` -> ``"halpha"``."""
+    """Case- and punctuation-tolerant key: ``"H-alpha"``, ``"Halpha"``, ``"H alpha"`` -> ``"halpha"``.
+
+    Parameters
+    ----------
+    name : str
+
+    Returns
+    -------
+    str
+    """
     if not isinstance(name, str):
         raise TypeError(f"line name must be a string, got {type(name).__name__} {name!r}")
     key = name.lower().replace("α", "alpha").replace("β", "beta").replace("γ", "gamma").replace("δ", "delta")
@@ -159,6 +168,19 @@ def register_line(line: Line, aliases: tuple[str, ...] = (), *, replace: bool = 
 
     Raises ValueError if the name is taken and ``replace`` is False, or if the entry is
     inconsistent (unknown medium, non-spectral unit, a vacuum-only wavelength marked air).
+
+    Parameters
+    ----------
+    line : Line
+        Name, rest value, unit, medium (wavelengths) and source.
+    aliases : tuple of str
+        Other names that find it.
+    replace : bool
+        Replace an existing line of the same name.
+
+    Returns
+    -------
+    Line
     """
     _validate(line)
     key = normalise_name(line.name)
@@ -202,6 +224,20 @@ def get_line(name: str | Line) -> Line:
 
     ``get_line("H-alpha")``, ``get_line("Halpha")`` and ``get_line("h alpha")`` are the same.
     A :class:`Line` is returned unchanged. Unknown names raise KeyError listing near matches.
+
+    Parameters
+    ----------
+    name : str or Line
+        Catalogue name or alias.
+
+    Returns
+    -------
+    Line
+
+    Raises
+    ------
+    KeyError
+        Unknown name (the message lists near matches).
     """
     if isinstance(name, Line):
         return name
@@ -251,6 +287,17 @@ def load_lines(path: str | Path, *, register: bool = True) -> list[Line]:
         source = "NIST ASD"
 
     ECSV: columns ``name``, ``value``, ``unit``, ``medium`` (wavelengths), ``source``.
+
+    Parameters
+    ----------
+    path : str or Path
+        A ``.toml`` or ``.ecsv`` file.
+    register : bool
+        Also add the lines to the catalogue (:func:`register_line`), so names find them.
+
+    Returns
+    -------
+    list of Line
     """
     path = Path(path)
     if path.suffix.lower() == ".toml":
@@ -310,6 +357,18 @@ def air_to_vacuum(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quant
 
     Values below 2000 Angstrom are returned unchanged (they are vacuum by convention). The
     iterative scheme makes this the exact inverse of :func:`vacuum_to_air`.
+
+    Parameters
+    ----------
+    wavelength : Quantity
+        Wavelengths in standard air (any length unit).
+    method : str
+        "Morton2000" (default), "Ciddor1996", "Edlen1966", ... (see ``AIR_VACUUM_METHODS``).
+
+    Returns
+    -------
+    Quantity
+        Vacuum wavelengths, in the unit given.
     """
     from specutils.utils.wcs_utils import air_to_vac
 
@@ -317,7 +376,20 @@ def air_to_vacuum(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quant
 
 
 def vacuum_to_air(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quantity:
-    """Vacuum wavelength -> air wavelength (specutils; default Morton 2000). Below 2000 Angstrom: unchanged."""
+    """Vacuum wavelength -> air wavelength (specutils; default Morton 2000). Below 2000 Angstrom: unchanged.
+
+    Parameters
+    ----------
+    wavelength : Quantity
+        Vacuum wavelengths (any length unit).
+    method : str
+        As in :func:`air_to_vacuum`.
+
+    Returns
+    -------
+    Quantity
+        Wavelengths in standard air, in the unit given.
+    """
     from specutils.utils.wcs_utils import vac_to_air
 
     return _convert(wavelength, method, vac_to_air)

@@ -133,7 +133,17 @@ _ID_SIGMA = 5.0
 
 
 def spectrum_sigma(spectrum) -> np.ndarray | None:
-    """Per-pixel standard deviation from any specutils uncertainty (StdDev, Variance, InverseVariance)."""
+    """Per-pixel standard deviation from any specutils uncertainty (StdDev, Variance, InverseVariance).
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+
+    Returns
+    -------
+    ndarray or None
+        Standard deviations in the flux unit (None without an uncertainty).
+    """
     unc = spectrum.uncertainty
     if unc is None:
         return None

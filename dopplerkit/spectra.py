@@ -239,6 +239,16 @@ def spectral_medium(spectrum, default: str | None = None) -> str | None:
     """Medium of a wavelength axis: ``meta["medium"]``, else FITS CTYPE (AWAV air, WAVE vacuum), else ``default``.
 
     Frequency and energy axes return "vacuum".
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    default : {"air", "vacuum", None}
+        Returned when the spectrum does not say.
+
+    Returns
+    -------
+    str or None
     """
     if not spectrum.spectral_axis.unit.is_equivalent(u.m):
         return "vacuum"
@@ -267,7 +277,17 @@ def spectral_medium(spectrum, default: str | None = None) -> str | None:
 
 
 def with_medium(spectrum, medium: str):
-    """A copy of ``spectrum`` whose meta says its wavelengths are in ``medium`` ('air' or 'vacuum')."""
+    """A copy of ``spectrum`` whose meta says its wavelengths are in ``medium`` ('air' or 'vacuum').
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    medium : {"air", "vacuum"}
+
+    Returns
+    -------
+    specutils.Spectrum
+    """
     if medium not in ("air", "vacuum"):
         raise ValueError(f"medium must be 'air' or 'vacuum', got {medium!r}")
     new = copy.copy(spectrum)
@@ -277,7 +297,16 @@ def with_medium(spectrum, medium: str):
 
 
 def is_observer_frame(spectrum) -> bool | None:
-    """True if dopplerkit last boosted this spectrum to the observer frame, False if deboosted, None if never touched."""
+    """True if dopplerkit last boosted this spectrum to the observer frame, False if deboosted, None if never touched.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+
+    Returns
+    -------
+    bool or None
+    """
     hist = (spectrum.meta or {}).get("dopplerkit_history")
     if not hist:
         return None
@@ -385,6 +414,17 @@ def deboost_spectrum(spectrum, beta=None, theta=0.0, *, gamma=None, beaming: Bea
 
     Same parameters as :func:`boost_spectrum` (``theta`` is still the observer-frame viewing
     angle, 0 = straight at us). ``meta["dopplerkit_frame"]`` becomes "source".
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        The observed spectrum.
+    beta, theta, gamma, beaming, z_cosmo, cosmology
+        As in :func:`boost_spectrum`.
+
+    Returns
+    -------
+    specutils.Spectrum
     """
     axis_factor, flux_factor, rec = _factors(
         beta, theta, gamma, beaming, z_cosmo, spectrum.flux.unit, spectrum.spectral_axis.unit, cosmology, True

@@ -199,6 +199,7 @@ class ExplorerState:
     # -- physics, all from the kinematics core and dopplerkit.spectra -------------------
     @property
     def gamma(self) -> float:
+        """Lorentz factor of the current speed."""
         return float(lorentz_factor(self.beta))
 
     def set_speed(self, value: float) -> None:
@@ -628,6 +629,7 @@ class PlaneState:
     }
 
     def add(self, kind: str, values):
+        """Add a measurement of a kind in ``KINDS`` from its values (numbers or text); ValueError names a bad one."""
         if kind not in self.KINDS:
             raise ValueError(f"kind must be one of {list(self.KINDS)}, got {kind!r}")
         need = {"z pair": 3, "single z": 2, "proper motions": 5, "flux ratio": 3}[kind]
@@ -638,10 +640,12 @@ class PlaneState:
         self.solution = None
 
     def remove(self, index: int):
+        """Remove the measurement at this position."""
         del self.measurements[index]
         self.solution = None
 
     def label(self, m) -> str:
+        """Text that names a measurement in the list and the legend."""
         kind, v = m
         return f"{kind}: " + ", ".join(f"{x:g}" for x in v)
 
@@ -668,6 +672,7 @@ class PlaneState:
         return lambda b, th: ((jet_counterjet_ratio(b, th * u.deg, alpha, "jet") - R) / e) ** 2
 
     def solve(self):
+        """The joint solution of every measurement (:func:`dopplerkit.fitting.fit_constraints`)."""
         from .fitting import fit_constraints
 
         kw = {"z_pairs": [], "single_z": [], "proper_motions": [], "flux_ratios": []}
@@ -751,6 +756,7 @@ class ConstraintPlane:
         self.redraw()
 
     def redraw(self):
+        """Draw every band and the joint solution again (after a change of the state)."""
         from .plotting import plot_constraint_plane
 
         self.listing.options = [self.state.label(m) for m in self.state.measurements]
@@ -783,6 +789,7 @@ class PrecessionState:
     t0: float = 0.0
 
     def model(self, t=None):
+        """Model redshifts of both jets at times ``t`` (default the data's), from the current parameters."""
         from .models import precessing_jet_redshifts
 
         t = self.t if t is None else t
@@ -798,6 +805,7 @@ class PrecessionState:
         return out
 
     def fit(self):
+        """Fit the precessing-jet model to the data from the current parameters; the state takes the fitted values."""
         from .fitting import fit_precessing_jet
 
         f = fit_precessing_jet(self.t, self.z_1, self.z_2, self.z_err)
@@ -870,6 +878,7 @@ class PrecessionExplorer:
         self.update()
 
     def update(self):
+        """State -> model curves and residuals -> one re-render of the figure."""
         s = self.state
         m1, m2 = s.model(self.tt)
         self.c1.set_data(self.tt, m1)
@@ -1055,6 +1064,7 @@ class OutflowExplorer:
         self.update()
 
     def update(self):
+        """Controls -> state -> read-out and figure (a refused value is named, nothing is clamped)."""
         from .kinematics import redshift_locus
 
         s = self.state
