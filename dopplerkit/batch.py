@@ -522,6 +522,57 @@ def _fitters(cfg, unit, medium, cache):
     return cache[key]
 
 
+#: Units of the batch table's line columns: centres in each line's catalogue unit (the unit of
+#: its configured rest value), FWHM in km/s, integrated fluxes in erg/(s cm2) (photon spectra:
+#: ph/(s cm2); spectra in non-physical units: a ``_flux_relative`` column without unit).
+ENERGY_FLUX_UNIT = "erg / (s cm2)"
+PHOTON_FLUX_UNIT = "ph / (s cm2)"
+
+
+def _line_units(cfg) -> dict:
+    """slug(label) -> unit string of the line's centre columns."""
+    import astropy.units as u
+
+    from .lines import get_line
+
+    out = {}
+    for ln in _line_dicts(cfg):
+        unit = get_line(ln["name"]).unit if "name" in ln else u.Quantity(ln["rest"]).unit.to_string()
+        out[slug(ln["label"])] = u.Unit(unit).to_string()
+    return out
+
+
+def _flux_column(unit) -> tuple[str, float]:
+    """(column suffix, factor) for an integrated line flux in ``unit`` (flux density x axis unit)."""
+    import astropy.units as u
+
+    for suffix, target in (("flux", ENERGY_FLUX_UNIT), ("photon_flux", PHOTON_FLUX_UNIT)):
+        try:
+            return suffix, float(unit.to(u.Unit(target)))
+        except u.UnitConversionError:
+            continue
+    return "flux_relative", 1.0
+
+
+def _centre_in(value: float, err: float, unit, medium, target) -> tuple[float, float, str]:
+    """A line centre and its error from the file's axis unit into ``target``; and the medium of the
+    result when it is a wavelength ("" otherwise). Lengths to lengths keep the file's medium;
+    across kinds an air wavelength is made vacuum first (frequencies and energies are vacuum)."""
+    import astropy.units as u
+
+    if unit.is_equivalent(target):
+        k = float(unit.to(target))
+        return value * k, abs(err * k), (medium or "") if target.is_equivalent(u.m) else ""
+    q = value * unit
+    if unit.is_equivalent(u.m) and medium == "air":
+        from .lines import air_to_vacuum
+
+        q = air_to_vacuum(q)
+    x = float(q.to_value(target, equivalencies=u.spectral()))
+    # wavelength, frequency and energy are proportional or inversely proportional: the relative error carries over
+    return x, abs(x) * abs(err / value) if value else math.nan, "vacuum" if target.is_equivalent(u.m) else ""
+
+
 def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     from .io import SpectrumReadError, detect_format, read_arrays
 
@@ -545,6 +596,11 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
             "wavelength medium unknown: the file does not say (MEDIUM keyword, CTYPE1 AWAV/WAVE) and [spectra] medium is not set"
         )
     row: dict = {"axis_unit": arr.axis_unit}
+    if "_units" not in cache:
+        cache["_units"] = _line_units(cfg)
+    canon = cache["_units"]
+    axis_u = u.Unit(arr.axis_unit)
+    flux_col, flux_k = _flux_column(u.Unit(arr.flux_unit) * axis_u)
     flags = set()
     notes: list = []
     redchi, pvals, conts, hosts = [], [], [], []
@@ -557,12 +613,15 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         conts.append(info["continuum"])
         for r in rows:
             pre = f"{slug(r['line'])}_{r['component']}"
-            row[f"{pre}_centre"] = float(r["centre"])
-            row[f"{pre}_centre_err"] = float(r["centre_err"])
+            target = canon.get(slug(r["line"]), arr.axis_unit)
+            c, ce, medium = _centre_in(float(r["centre"]), float(r["centre_err"]), axis_u, arr.medium, u.Unit(target))
+            row[f"{pre}_centre"], row[f"{pre}_centre_err"] = c, ce
+            if medium:
+                row["medium"] = medium
             row[f"{pre}_z"] = float(r["z"])
             row[f"{pre}_z_err"] = float(r["z_err"])
             row[f"{pre}_fwhm"] = float(r["fwhm"])
-            row[f"{pre}_flux"] = float(r["flux"])
+            row[f"{pre}_{flux_col}"] = float(r["flux"]) * flux_k
             flags.update(r["flags"])
             notes += [n for n in r["notes"] if n not in notes]
     if cfg["model"] == "jet-pair":
@@ -715,7 +774,7 @@ def _journal_path(output: Path) -> Path:
     return output.with_name(f".{output.name}.journal.jsonl")
 
 
-def _read_previous(output: Path, config_hash: str) -> dict:
+def _read_previous(output: Path, config_hash: str, root: str | None = None) -> dict:
     """Rows already done, from the output table and the journal (journal rows are newer).
 
     Raises ConfigError when they were made with another configuration.
@@ -738,7 +797,10 @@ def _read_previous(output: Path, config_hash: str) -> dict:
             for r in t:
                 # an empty text cell comes back masked: it is empty (None), never the masked constant's 0.0
                 d = {k: (None if np.ma.is_masked(r[k]) else r[k].item() if hasattr(r[k], "item") else r[k]) for k in t.colnames}
-                take({k: (v.decode("utf-8") if isinstance(v, bytes) else v) for k, v in d.items()})
+                d = {k: (v.decode("utf-8") if isinstance(v, bytes) else v) for k, v in d.items()}
+                if root is not None and isinstance(d.get("file"), str):
+                    d["file"] = os.path.join(root, d["file"])  # the table's paths are relative to SPECTRA_DIR
+                take(d)
         except Exception as exc:
             print(
                 f"dopplerkit batch: warning: cannot read the existing output {output} for --resume ({exc}); starting over", file=sys.stderr
@@ -909,7 +971,19 @@ class _OutputLock:
         return False
 
 
-_TEXT_COLUMNS = ("file", "status", "message", "flags", "continuum", "host", "axis_unit", "file_hash", "config_hash", "dopplerkit_version")
+_TEXT_COLUMNS = (
+    "file",
+    "status",
+    "message",
+    "flags",
+    "continuum",
+    "host",
+    "axis_unit",
+    "medium",
+    "file_hash",
+    "config_hash",
+    "dopplerkit_version",
+)
 _INT_COLUMNS = ("file_size", "file_mtime_ns")
 _FIXED_COLUMNS = ["file", "status", "message"]
 _TAIL_COLUMNS = [
@@ -923,6 +997,7 @@ _TAIL_COLUMNS = [
     "host",
     "flags",
     "axis_unit",
+    "medium",
     "seconds",
     "file_size",
     "file_mtime_ns",
@@ -937,7 +1012,7 @@ def _to_table(rows: list[dict]):
     return _fill_table(lambda: iter(enumerate(rows)), len(rows))
 
 
-def _fill_table(source, n: int, keys=None):
+def _fill_table(source, n: int, keys=None, units=None):
     """Result table of ``n`` rows from ``source()``, an iterable of (position, row) that may repeat a
     position (the last row wins). Without ``keys`` (the column names) two passes over the source
     (columns, then values), so the rows never have to be held in memory together."""
@@ -974,11 +1049,35 @@ def _fill_table(source, n: int, keys=None):
         if k in data:
             data[k] = data[k].astype(str) if n else np.array([], dtype=str)
     t = Table(data)
-    if "viewing_angle" in t.colnames:
-        t["viewing_angle"].unit = "deg"
-        t["viewing_angle_err"].unit = "deg"
-    t.meta["comment"] = ["dopplerkit batch results; viewing angles in degrees (0 = moving straight at us); z < 0 is a blueshift"]
+    for k, unit in _column_units(t.colnames, units or {}).items():
+        t[k].unit = unit
+    t.meta["comment"] = [
+        "dopplerkit batch results; viewing angles in degrees (0 = moving straight at us); z < 0 is a blueshift; "
+        "line centres in each line's catalogue unit (wavelengths in the medium of the medium column), "
+        "FWHM in km/s, integrated line fluxes in erg/(s cm2) (photon spectra: ph/(s cm2))"
+    ]
     return t
+
+
+def _column_units(colnames, line_units: dict) -> dict:
+    """Column -> unit for the columns that carry one (line centres from ``line_units``: slug -> unit)."""
+    out = {}
+    fixed = {"viewing_angle": "deg", "viewing_angle_err": "deg", "seconds": "s", "file_size": "byte", "file_mtime_ns": "ns"}
+    for k in colnames:
+        if k in fixed:
+            out[k] = fixed[k]
+        elif k.endswith("_fwhm"):
+            out[k] = "km / s"
+        elif k.endswith("_photon_flux"):
+            out[k] = PHOTON_FLUX_UNIT
+        elif k.endswith("_flux") and not k.endswith("_flux_relative"):
+            out[k] = ENERGY_FLUX_UNIT
+        elif k.endswith(("_centre", "_centre_err")):
+            for line, unit in line_units.items():
+                if k.startswith(line + "_"):
+                    out[k] = unit
+                    break
+    return out
 
 
 def run_batch(
@@ -1084,7 +1183,7 @@ def run_batch(
         if not quiet:
             print(f"dopplerkit batch: created the output directory {output.parent}", file=out)
     with _OutputLock(output, out):
-        code, table = _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out)
+        code, table = _run_locked(cfg, output, d, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out)
     if plot_fits and code in (EXIT_OK, EXIT_SOME_FAILED):
         _plot_fits(table if table is not None else output, cfg, d, Path(plot_fits), quiet, out)
     return code, table
@@ -1103,14 +1202,10 @@ def _plot_fits(table, cfg, spectra_dir: Path, directory: Path, quiet: bool, out)
     if not isinstance(table, Table):
         table = Table.read(table)
     directory.mkdir(parents=True, exist_ok=True)
-    root = spectra_dir.resolve()
     n = 0
     for r in table[np.asarray(table["status"]) == "suspect"]:
-        path = Path(str(r["file"]))
-        try:
-            rel = path.resolve().relative_to(root).as_posix()
-        except ValueError:
-            rel = path.name
+        rel = str(r["file"])
+        path = Path(rel) if os.path.isabs(rel) else spectra_dir / rel
         target = directory / (slug(rel.rsplit(".", 1)[0]) + ".png")
         try:
             with warnings.catch_warnings():
@@ -1131,10 +1226,16 @@ def _plot_fits(table, cfg, spectra_dir: Path, directory: Path, quiet: bool, out)
     return n
 
 
-def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out):
+def _root(spectra_dir) -> str:
+    """SPECTRA_DIR as the file search spells it: every input path is this, a separator, its relative path."""
+    return str(spectra_dir).rstrip(os.sep) or os.sep
+
+
+def _run_locked(cfg, output, spectra_dir, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out):
 
     h = cfg.hash
-    previous = _read_previous(output, h) if resume else {}
+    root = _root(spectra_dir)
+    previous = _read_previous(output, h, root) if resume else {}
     journal = _journal_path(output)
     if not resume and journal.exists():
         journal.unlink()  # ours (the lock is held): a fresh run starts a fresh journal
@@ -1200,7 +1301,7 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
             bar.close()
     if code is not None:
         return code, None
-    table, counts = _write_results(journal, paths, keep, h, output)
+    table, counts = _write_results(journal, paths, keep, h, output, _line_units(cfg.as_dict()), root)
     journal.unlink(missing_ok=True)
     n_ok, n_err = counts.get("ok", 0), counts.get("error", 0)
     n_rows = sum(counts.values())
@@ -1227,7 +1328,7 @@ def _run_locked(cfg, output, paths, workers, scheduler, resume, chunk_size, quie
 STREAM_ROWS = 20000
 
 
-def _write_results(journal: Path, paths, keep: dict, config_hash: str, output: Path):
+def _write_results(journal: Path, paths, keep: dict, config_hash: str, output: Path, units=None, root: str | None = None):
     """Write the result table in input order: rows kept from before, this run's rows from the journal.
 
     One pass over the journal notes where each file's last row starts; rows are then read back
@@ -1268,16 +1369,25 @@ def _write_results(journal: Path, paths, keep: dict, config_hash: str, output: P
                     offsets[position[r["file"]]] = off
                     note_keys(r)
 
+    cut = len(root) + 1 if root is not None else 0
+
+    def rel(f):  # the path below SPECTRA_DIR (the table says where that is, in meta["spectra_dir"])
+        return f[cut:] if cut and f.startswith(root + os.sep) else f
+
     def rows(a, b):
         with journal.open("rb") if journal.exists() else open(os.devnull, "rb") as fh:
             for i in range(a, b):
                 if offsets[i] >= 0:
                     fh.seek(int(offsets[i]))
-                    yield i - a, json.loads(fh.readline())
+                    r = json.loads(fh.readline())
                 elif files[i] in keep:
-                    yield i - a, keep[files[i]]
+                    r = dict(keep[files[i]])
                 else:  # pragma: no cover - every finished run records a row per input
-                    yield i - a, {"file": files[i], "status": "error", "message": "no result was recorded for this file"}
+                    r = {"status": "error", "message": "no result was recorded for this file"}
+                r["file"] = rel(files[i])
+                yield i - a, r
+
+    meta = {"spectra_dir": os.path.abspath(root)} if root is not None else {}
 
     counts: Counter = Counter()
     if output.suffix.lower() in (".ecsv", ".csv") and n > STREAM_ROWS:
@@ -1285,13 +1395,15 @@ def _write_results(journal: Path, paths, keep: dict, config_hash: str, output: P
         def blocks():
             for a in range(0, n, STREAM_ROWS):
                 b = min(a + STREAM_ROWS, n)
-                t = _fill_table(lambda a=a, b=b: rows(a, b), b - a, keys)
+                t = _fill_table(lambda a=a, b=b: rows(a, b), b - a, keys, units)
+                t.meta.update(meta)
                 counts.update(str(v) for v in t["status"])
                 yield t
 
         write_table_blocks(blocks(), output)
         return None, counts
-    table = _fill_table(lambda: rows(0, n), n, keys)
+    table = _fill_table(lambda: rows(0, n), n, keys, units)
+    table.meta.update(meta)
     counts.update(str(v) for v in table["status"])
     write_table(table, output)
     return table, counts

@@ -708,7 +708,11 @@ def write_table(table, path: str | Path) -> Path:
         raise ValueError(f"result table extension must be one of {sorted(TABLE_FORMATS)}, got {path.suffix!r}")
     if fmt == "fits":
         table = _utf8_text_columns(table)
-    with atomic_path(path) as tmp:
+    import warnings
+
+    with atomic_path(path) as tmp, warnings.catch_warnings():
+        # long meta keys (spectra_dir) become HIERARCH cards, which astropy reads back by the same name
+        warnings.filterwarnings("ignore", message=".*HIERARCH card will be created")
         table.write(tmp, format=fmt)
     return path
 
@@ -771,4 +775,15 @@ def _utf8_text_columns(table):
                 out = table.copy(copy_data=False)
             out[name] = np.char.encode(np.asarray(col, dtype=str), "utf-8")
             out[name].unit = col.unit
+    # header values are ASCII too: non-ASCII text in meta (a directory name) is percent-encoded
+    # (urllib.parse.unquote gives it back)
+    bad = [k for k, v in table.meta.items() if isinstance(v, str) and not v.isascii()]
+    if bad:
+        from urllib.parse import quote
+
+        if out is None:
+            out = table.copy(copy_data=False)
+        out.meta = dict(table.meta)
+        for k in bad:
+            out.meta[k] = quote(table.meta[k], safe="/:._-~ ")
     return table if out is None else out

@@ -1292,6 +1292,15 @@ class PopulationExplorer:
             ax.legend(fontsize=7, frameon=False, loc="upper right")
         self.image.value = _render_fresh(self.fig)
 
+    def path_of(self, i: int) -> str:
+        """The file of row ``i``: batch tables give paths relative to ``meta["spectra_dir"]``."""
+        import os
+        from urllib.parse import unquote
+
+        f = str(self.state.table["file"][i])
+        root = self.state.table.meta.get("spectra_dir")
+        return f if os.path.isabs(f) or not root else os.path.join(unquote(str(root)), f)
+
     def show_row(self):
         """The chosen row in words and, with a configuration, its spectrum with the fit and residuals."""
         from ._format import with_error
@@ -1326,7 +1335,7 @@ class PopulationExplorer:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                spec, m = measure_file(str(r["file"]), self.config)
+                spec, m = measure_file(self.path_of(i), self.config)
         except Exception as exc:  # the file moved or cannot be read: say so in the panel
             self.detail.value = text + f"<br><span style='color:{PALETTE['receding']}'>cannot draw the spectrum: {exc}</span>"
             return

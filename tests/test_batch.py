@@ -71,7 +71,7 @@ def survey(tmp_path_factory):
             name = spectra / f"s{k:02d}.csv"  # plain CSV: no units in the file, taken from the config
             t = Table({"Wavelength": s.spectral_axis.value, "FLUX": s.flux.value, "Error": s.uncertainty.array})
             t.write(name, format="ascii.csv")
-        truth[str(name)] = (beta, ang)
+        truth[name.relative_to(spectra).as_posix()] = (beta, ang)  # the table's paths are relative to SPECTRA_DIR
     bad = spectra / "bad"
     bad.mkdir()
     (bad / "empty.fits").write_bytes(b"")
@@ -269,7 +269,7 @@ def test_journal_lines_are_plain_json(survey, tmp_path, capsys):
     journal.write_text('{"torn line')
     assert _run(survey, out, "--workers", "1", "--pattern", "s00.fits", "--resume") == 0
     t = Table.read(out)
-    assert list(t["file"]) == [str(survey["dir"] / "s00.fits")]  # a line torn by a crash is ignored
+    assert list(t["file"]) == ["s00.fits"]  # a line torn by a crash is ignored
     # rows made with another configuration: --resume refuses and says how to start afresh
     journal.write_text('{"file": "x", "status": "ok", "config_hash": "zz"}\n')
     assert _run(survey, out, "--workers", "1", "--pattern", "s00.fits", "--resume") == 2
@@ -485,9 +485,9 @@ def test_resume_refits_a_changed_input(small, tmp_path):
     write_spectrum(_spectrum(9, np.random.default_rng(99))[0], changed)
     assert _run(small, out, "--resume") in (0, 1)
     again = Table.read(out)
-    i = list(again["file"]).index(str(changed))
+    i = list(again["file"]).index(changed.name)
     assert again["beta"][i] != first["beta"][i]
-    j = list(again["file"]).index(str(small["dir"] / "é0.fits"))
+    j = list(again["file"]).index("é0.fits")
     assert again["beta"][j] == first["beta"][j] and again["seconds"][j] == first["seconds"][j]  # unchanged input kept
     # same size and modification time, other bytes (a copy that kept its time stamp): the content hash tells
     same = small["dir"] / "é2.fits"
@@ -499,7 +499,7 @@ def test_resume_refits_a_changed_input(small, tmp_path):
     os.utime(same, ns=(st.st_atime_ns, st.st_mtime_ns))
     assert _run(small, out, "--resume") in (0, 1)
     third = Table.read(out)
-    k = list(third["file"]).index(str(same))
+    k = list(third["file"]).index(same.name)
     assert third["beta"][k] == third["beta"][j] != again["beta"][k]  # refitted: now the same spectrum as é0
 
 
@@ -510,7 +510,11 @@ def test_unicode_file_names_in_every_format(small, tmp_path, ext):
     assert _run(small, out, "--resume") in (0, 1)  # and resume reads them back
     t = Table.read(out)
     names = [v.decode("utf-8") if isinstance(v, bytes) else str(v) for v in t["file"]]
-    assert names == [str(small["dir"] / f"é{k}.fits") for k in range(3)]
+    assert names == [f"é{k}.fits" for k in range(3)]  # relative to SPECTRA_DIR, which the table's meta gives
+    from urllib.parse import unquote
+
+    if ext != ".csv":  # CSV keeps no metadata
+        assert unquote(t.meta["spectra_dir"]) == os.path.abspath(small["dir"])
 
 
 def test_workers_capped_at_the_cores(small, tmp_path, capsys):
@@ -724,3 +728,50 @@ def test_a_large_table_is_written_in_blocks_identical_to_one_write(survey, tmp_p
     code, table = batch.run_batch(survey["dir"], survey["config"], out, workers=1, quiet=True)
     assert code == 1 and table is None
     _assert_same_table(ref, out)  # every column but the fit's run time, to the last digit
+
+
+def test_every_line_column_carries_its_unit_whatever_the_file_units(tmp_path):
+    # the same spectrum written with its axis in Angstrom and in nm: one set of centres, in the
+    # line's catalogue unit (Angstrom) with the unit on the column (unit conversion: common practice, no source)
+    from astropy.table import QTable
+
+    from dopplerkit.batch import run_batch
+    from dopplerkit.demo import default_data_dir
+    from dopplerkit.io import read_spectrum, write_spectrum
+
+    src = tmp_path / "spectra"
+    src.mkdir()
+    s = read_spectrum(default_data_dir() / "survey" / "spectra" / "dkj_001.fits")
+    write_spectrum(s, src / "a_angstrom.fits")
+    from specutils import Spectrum
+
+    nm = Spectrum(spectral_axis=s.spectral_axis.to(u.nm), flux=s.flux, uncertainty=s.uncertainty, meta=dict(s.meta))
+    write_spectrum(nm, src / "b_nm.fits")
+    cfg = {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair"}, "spectra": {"medium": "vacuum"}}
+    _code, _t = run_batch(src, cfg, tmp_path / "r.ecsv", workers=1, quiet=True)
+    t = QTable.read(tmp_path / "r.ecsv")
+    assert t["h_alpha_approaching_centre"].unit == u.AA and t["h_alpha_approaching_fwhm"].unit == u.km / u.s
+    assert t["h_alpha_approaching_flux"].unit == u.erg / u.s / u.cm**2 and t["viewing_angle"].unit == u.deg
+    assert list(t["axis_unit"]) == ["Angstrom", "nm"] and list(t["medium"]) == ["vacuum", "vacuum"]
+    assert_allclose(t["h_alpha_approaching_centre"][1].value, t["h_alpha_approaching_centre"][0].value, rtol=1e-6)
+    assert_allclose(t["h_alpha_approaching_flux"][1].value, t["h_alpha_approaching_flux"][0].value, rtol=1e-4)
+
+
+def test_x_ray_photon_spectrum_gives_centres_in_kev_and_photon_fluxes(tmp_path):
+    from astropy.table import QTable
+
+    from dopplerkit.batch import run_batch
+    from dopplerkit.demo import default_data_dir
+
+    src = tmp_path / "spectra"
+    src.mkdir()
+    (src / "q.fits").write_bytes((default_data_dir() / "quasar_dkq7" / "dkq7_xray.fits").read_bytes())
+    cfg = {
+        "line": [{"name": "Fe XXV He-alpha w", "components": 1}, {"name": "Fe XXVI Ly-alpha", "components": 1}],
+        "fit": {"tie": True, "kind": "absorption", "z_min": -0.5, "z_max": 1.5},
+    }
+    _code, _t = run_batch(src, cfg, tmp_path / "r.ecsv", workers=1, quiet=True)
+    t = QTable.read(tmp_path / "r.ecsv")
+    centre = next(c for c in t.colnames if c.startswith("fe_xxv") and c.endswith("_centre"))
+    assert t[centre].unit == u.keV and 4.0 < t[centre][0].value < 5.0
+    assert any(c.endswith("_photon_flux") and t[c].unit == u.ph / u.s / u.cm**2 for c in t.colnames)

@@ -292,7 +292,8 @@ def test_population_filters_and_the_chosen_row(tmp_path):
     for name in ("dkj_001.fits", "dkj_002.fits"):
         (src / name).write_bytes((survey / "spectra" / name).read_bytes())
     _code, res = run_batch(src, survey / "config.toml", tmp_path / "r.ecsv", workers=1, quiet=True)
-    _spec, m = measure_file(res["file"][0], survey / "config.toml")
+    assert res["file"][0] == "dkj_001.fits" and res.meta["spectra_dir"] == str(src)  # paths relative to SPECTRA_DIR
+    _spec, m = measure_file(src / res["file"][0], survey / "config.toml")
     assert_allclose(m["z"][0], res["h_alpha_approaching_z"][0], rtol=1e-9)
     assert_allclose(m["z"][1], res["h_alpha_receding_z"][0], rtol=1e-9)
     ex = PopulationExplorer(res, config=survey / "config.toml")
