@@ -42,6 +42,7 @@ from __future__ import annotations
 import fnmatch
 import hashlib
 import json
+import logging
 import math
 import os
 import sys
@@ -68,6 +69,35 @@ __all__ = [
     "process_chunk",
     "run_batch",
 ]
+
+#: Progress and diagnostics go to this logger (and its parent "dopplerkit"); the command line
+#: shows them on stderr (:func:`log_to`), a library caller configures logging as it likes.
+log = logging.getLogger("dopplerkit.batch")
+
+
+class log_to:
+    """Within the block, messages of the "dopplerkit" loggers at ``level`` and above are written to
+    ``stream`` as plain lines (what the command line and the demo use)."""
+
+    def __init__(self, stream, level=logging.INFO):
+        self.handler = logging.StreamHandler(stream)
+        self.handler.setFormatter(logging.Formatter("%(message)s"))
+        self.handler.setLevel(level)
+        self.level = level
+
+    def __enter__(self):
+        self.logger = logging.getLogger("dopplerkit")
+        self.old = self.logger.level
+        if self.logger.level == logging.NOTSET or self.logger.level > self.level:
+            self.logger.setLevel(self.level)
+        self.logger.addHandler(self.handler)
+        return self
+
+    def __exit__(self, *exc):
+        self.logger.removeHandler(self.handler)
+        self.logger.setLevel(self.old)
+        return False
+
 
 EXIT_OK = 0
 EXIT_SOME_FAILED = 1
@@ -802,9 +832,7 @@ def _read_previous(output: Path, config_hash: str, root: str | None = None) -> d
                     d["file"] = os.path.join(root, d["file"])  # the table's paths are relative to SPECTRA_DIR
                 take(d)
         except Exception as exc:
-            print(
-                f"dopplerkit batch: warning: cannot read the existing output {output} for --resume ({exc}); starting over", file=sys.stderr
-            )
+            log.warning(f"dopplerkit batch: warning: cannot read the existing output {output} for --resume ({exc}); starting over")
     j = _journal_path(output)
     if j.exists():
         with j.open() as fh:
@@ -949,9 +977,8 @@ class _OutputLock:
                     other = {}
                 pid, host = other.get("pid"), other.get("host")
                 if host == me["host"] and isinstance(pid, int) and not _pid_alive(pid):
-                    print(
-                        f"dopplerkit batch: note: taking over the lock of a run that died (pid {pid}, started {other.get('started')})",
-                        file=self.out,
+                    log.warning(
+                        f"dopplerkit batch: note: taking over the lock of a run that died (pid {pid}, started {other.get('started')})"
                     )
                     self.path.unlink(missing_ok=True)
                     continue
@@ -1181,7 +1208,7 @@ def run_batch(
     if not output.parent.exists():
         output.parent.mkdir(parents=True)
         if not quiet:
-            print(f"dopplerkit batch: created the output directory {output.parent}", file=out)
+            log.info(f"dopplerkit batch: created the output directory {output.parent}")
     with _OutputLock(output, out):
         code, table = _run_locked(cfg, output, d, paths, workers, scheduler, resume, chunk_size, quiet, plot, cluster_timeout, out)
     if plot_fits and code in (EXIT_OK, EXIT_SOME_FAILED):
@@ -1220,9 +1247,9 @@ def _plot_fits(table, cfg, spectra_dir: Path, directory: Path, quiet: bool, out)
                 fig.savefig(tmp, dpi=120, format="png")
             n += 1
         except Exception as exc:  # one figure that cannot be drawn never stops the others
-            print(f"dopplerkit batch: warning: no figure for {rel}: {type(exc).__name__}: {exc}", file=out)
+            log.warning(f"dopplerkit batch: warning: no figure for {rel}: {type(exc).__name__}: {exc}")
     if not quiet:
-        print(f"{n} figures of suspect rows in {directory}", file=out)
+        log.info(f"{n} figures of suspect rows in {directory}")
     return n
 
 
@@ -1292,10 +1319,10 @@ def _run_locked(cfg, output, spectra_dir, paths, workers, scheduler, resume, chu
                         _run_local(workers, chunks, cfgd, record, out, quiet, pool)
     except ClusterError as exc:
         code = EXIT_CLUSTER_LOST
-        print(f"dopplerkit batch: error: {exc}; {n_new} new results kept in {journal}; run again with --resume", file=out)
+        log.error(f"dopplerkit batch: error: {exc}; {n_new} new results kept in {journal}; run again with --resume")
     except KeyboardInterrupt:
         code = EXIT_INTERRUPTED
-        print(f"dopplerkit batch: interrupted; {n_new} new results kept in {journal}; run again with --resume", file=out)
+        log.warning(f"dopplerkit batch: interrupted; {n_new} new results kept in {journal}; run again with --resume")
     finally:
         if bar is not None:
             bar.close()
@@ -1315,10 +1342,9 @@ def _run_locked(cfg, output, spectra_dir, paths, workers, scheduler, resume, chu
         plot_population(table if table is not None else Table.read(output), path=plot)
     if not quiet:
         rate = n_new / elapsed if elapsed > 0 else float("nan")
-        print(
+        log.info(
             f"ok {n_ok}, suspect {n_sus}, failed {n_err}, of {len(paths)} spectra ({len(keep)} kept from before); "
-            f"elapsed {elapsed:.1f} s, {rate:.1f} spectra/s; results in {output}",
-            file=out,
+            f"elapsed {elapsed:.1f} s, {rate:.1f} spectra/s; results in {output}"
         )
     return (EXIT_OK if n_ok == n_rows else EXIT_SOME_FAILED), table
 
@@ -1450,7 +1476,7 @@ def _worker_count(workers, n_chunks, out, quiet) -> int:
     n = workers or cores
     if n > cores:
         if not quiet:
-            print(f"dopplerkit batch: note: --workers {n} capped at the {cores} cores available", file=out)
+            log.info(f"dopplerkit batch: note: --workers {n} capped at the {cores} cores available")
         n = cores
     return max(1, min(n, n_chunks))
 
@@ -1504,7 +1530,7 @@ def _run_local(workers, chunks, cfgd, record, out=sys.stderr, quiet=False, pool=
         if not pending:
             return
         if attempt == 1 and not quiet:
-            print(f"dopplerkit batch: note: a worker process died; retrying {len(pending)} chunk(s) once in a fresh pool", file=out)
+            log.warning(f"dopplerkit batch: note: a worker process died; retrying {len(pending)} chunk(s) once in a fresh pool")
     for paths, _fmts in pending:
         record(_dead_worker_rows(paths, "WorkerDied: the worker process fitting this file died twice (killed, or out of memory)"))
 
@@ -1598,21 +1624,22 @@ def _run_dask(address, chunks, cfgd, record, timeout=60.0):
 def run_batch_cli(args) -> int:
     """Entry from :mod:`dopplerkit.cli`."""
     try:
-        code, _ = run_batch(
-            args.spectra_dir,
-            args.config,
-            args.output,
-            workers=args.workers,
-            scheduler=args.scheduler,
-            resume=args.resume,
-            overwrite=args.overwrite,
-            pattern=args.pattern,
-            cluster_timeout=args.cluster_timeout,
-            chunk_size=args.chunk_size,
-            quiet=args.quiet,
-            plot=args.plot,
-            plot_fits=args.plot_fits,
-        )
+        with log_to(sys.stderr):
+            code, _ = run_batch(
+                args.spectra_dir,
+                args.config,
+                args.output,
+                workers=args.workers,
+                scheduler=args.scheduler,
+                resume=args.resume,
+                overwrite=args.overwrite,
+                pattern=args.pattern,
+                cluster_timeout=args.cluster_timeout,
+                chunk_size=args.chunk_size,
+                quiet=args.quiet,
+                plot=args.plot,
+                plot_fits=args.plot_fits,
+            )
     except ConfigError as exc:
         print(f"dopplerkit batch: error: {exc}", file=sys.stderr)
         return EXIT_NOTHING_RAN

@@ -285,14 +285,17 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
     res.mkdir(parents=True, exist_ok=True)
 
     print("== 1. batch fit of the invented survey (data_demo/survey) ==", file=out)
-    _code, table = run_batch(
-        data / "survey" / "spectra",
-        data / "survey" / "config.toml",
-        res / "survey.ecsv",
-        workers=workers,
-        plot=str(res / "survey.png"),
-        out=out,
-    )
+    from .batch import log_to
+
+    with log_to(out):
+        _code, table = run_batch(
+            data / "survey" / "spectra",
+            data / "survey" / "config.toml",
+            res / "survey.ecsv",
+            workers=workers,
+            plot=str(res / "survey.png"),
+            out=out,
+        )
     truth = Table.read(data / "survey" / "truth.ecsv")
     t = table[table["status"] == "ok"]
     t["name"] = [Path(f).name for f in t["file"]]

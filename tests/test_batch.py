@@ -775,3 +775,19 @@ def test_x_ray_photon_spectrum_gives_centres_in_kev_and_photon_fluxes(tmp_path):
     centre = next(c for c in t.colnames if c.startswith("fe_xxv") and c.endswith("_centre"))
     assert t[centre].unit == u.keV and 4.0 < t[centre][0].value < 5.0
     assert any(c.endswith("_photon_flux") and t[c].unit == u.ph / u.s / u.cm**2 for c in t.colnames)
+
+
+def test_progress_and_diagnostics_go_through_logging(small, tmp_path, caplog):
+    # the library logs (logger "dopplerkit.batch"); the command line shows the records on stderr
+    import logging
+
+    from dopplerkit.batch import run_batch
+
+    import io
+
+    with caplog.at_level(logging.INFO, logger="dopplerkit"):
+        code, _t = run_batch(small["dir"], small["config"], tmp_path / "new" / "r.ecsv", workers=1, quiet=False, out=io.StringIO())
+    assert code in (0, 1)
+    messages = [r.getMessage() for r in caplog.records if r.name == "dopplerkit.batch"]
+    assert any("created the output directory" in m for m in messages)
+    assert any(m.startswith("ok ") and "spectra/s" in m for m in messages)
