@@ -775,15 +775,45 @@ def _utf8_text_columns(table):
                 out = table.copy(copy_data=False)
             out[name] = np.char.encode(np.asarray(col, dtype=str), "utf-8")
             out[name].unit = col.unit
-    # header values are ASCII too: non-ASCII text in meta (a directory name) is percent-encoded
-    # (urllib.parse.unquote gives it back)
-    bad = [k for k, v in table.meta.items() if isinstance(v, str) and not v.isascii()]
-    if bad:
+    # header keywords have at most 8 characters (long text continues on CONTINUE cards): known long
+    # meta keys get a short name (FITS_META_KEYS); header values are ASCII: non-ASCII text (a
+    # directory name) is percent-encoded (urllib.parse.unquote gives it back)
+    renamed = {FITS_META_KEYS.get(k, k): v for k, v in table.meta.items()}
+    bad = [k for k, v in renamed.items() if isinstance(v, str) and not v.isascii()]
+    if bad or renamed.keys() != table.meta.keys():
         from urllib.parse import quote
 
         if out is None:
             out = table.copy(copy_data=False)
-        out.meta = dict(table.meta)
+        out.meta = renamed
         for k in bad:
-            out.meta[k] = quote(table.meta[k], safe="/:._-~ ")
+            out.meta[k] = quote(renamed[k], safe="/:._-~ ")
     return table if out is None else out
+
+
+#: Meta keys written under a short name in FITS headers (keywords have at most 8 characters).
+FITS_META_KEYS = {"spectra_dir": "SPECDIR"}
+
+
+def table_meta(table, key: str, default=None):
+    """A meta value of a table read from any format: ``key`` or its FITS name (:data:`FITS_META_KEYS`),
+    percent-decoded.
+
+    Parameters
+    ----------
+    table : astropy.table.Table
+    key : str
+    default : object
+        Returned when the table has neither name.
+
+    Returns
+    -------
+    object
+    """
+    from urllib.parse import unquote
+
+    for k in (key, FITS_META_KEYS.get(key, key), FITS_META_KEYS.get(key, key).lower()):
+        if k in table.meta:
+            v = table.meta[k]
+            return unquote(v) if isinstance(v, str) else v
+    return default

@@ -1295,11 +1295,12 @@ class PopulationExplorer:
     def path_of(self, i: int) -> str:
         """The file of row ``i``: batch tables give paths relative to ``meta["spectra_dir"]``."""
         import os
-        from urllib.parse import unquote
+
+        from .io import table_meta
 
         f = str(self.state.table["file"][i])
-        root = self.state.table.meta.get("spectra_dir")
-        return f if os.path.isabs(f) or not root else os.path.join(unquote(str(root)), f)
+        root = table_meta(self.state.table, "spectra_dir")
+        return f if os.path.isabs(f) or not root else os.path.join(str(root), f)
 
     def show_row(self):
         """The chosen row in words and, with a configuration, its spectrum with the fit and residuals."""
