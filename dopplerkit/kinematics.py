@@ -44,22 +44,31 @@ from .exceptions import DegenerateGeometryWarning, NearLightSpeedWarning
 __all__ = [
     "GEOMETRIES",
     "SPEED_OF_LIGHT_KMS",
+    "T_EQUIPARTITION",
+    "T_INVERSE_COMPTON",
     "aberrate",
     "apparent_speed",
+    "apparent_speed_from_proper_motion",
+    "apparent_speed_limits",
     "beaming_factor",
     "beta_cos_theta_from_ratio",
     "beta_from_redshift",
     "boost_exponent",
     "compose_redshift",
+    "counterjet_limit",
     "deaberrate",
     "doppler_factor",
+    "intrinsic_opening_angle",
     "jet_counterjet_ratio",
     "lorentz_factor",
     "proper_motions",
     "redshift",
     "redshift_locus",
+    "solve_apparent_and_doppler",
     "solve_jet_pair",
     "solve_proper_motions",
+    "variability_brightness_temperature",
+    "variability_doppler_factor",
     "velocity_readings",
 ]
 
@@ -835,3 +844,261 @@ def velocity_readings(z: ArrayLike):
             "radio_error": err_radio,
         }
     )
+
+
+# ---------------------------------------------------------------------------
+# Jets of active galaxies: apparent motion at cosmological distance, variability Doppler factors,
+# limits from a counter-jet that is not seen, opening angles
+# ---------------------------------------------------------------------------
+#: Intrinsic brightness-temperature limits (K): equipartition of particle and field energy
+#: (Readhead 1994, ApJ 426, 51) and the inverse-Compton catastrophe (Kellermann & Pauliny-Toth
+#: 1969, ApJ 155, L71). Values from memory.
+T_EQUIPARTITION = 5e10
+T_INVERSE_COMPTON = 1e12
+
+
+def _positive_quantity(value, unit, name: str) -> np.ndarray:
+    if not isinstance(value, u.Quantity):
+        raise TypeError(f"{name} must be a Quantity in units like {unit}, got {_describe(value)}")
+    try:
+        x = _to_float_array(value.to_value(unit), name)
+    except u.UnitConversionError as exc:
+        raise u.UnitsError(f"{name} must be convertible to {unit}, got unit {value.unit!r}") from exc
+    bad = x <= 0
+    if bad.any():
+        raise ValueError(f"{name} must be > 0, got {_first_bad(x, bad)} {unit}")
+    return x
+
+
+def _host_z(z, name: str = "z") -> np.ndarray:
+    zz = _dimensionless(z, name)
+    bad = zz <= 0
+    if bad.any():
+        raise ValueError(f"{name} must be a cosmological redshift > 0, got {_first_bad(zz, bad)}")
+    return zz
+
+
+def _luminosity_distance_m(z, cosmology):
+    if cosmology is None:
+        from astropy.cosmology import Planck18 as cosmology
+    return cosmology.luminosity_distance(z).to_value(u.m)
+
+
+def apparent_speed_from_proper_motion(mu, z, *, cosmology=None):
+    """Apparent transverse speed (units of c) of a feature moving ``mu`` on the sky at host redshift ``z``.
+
+    Parameters
+    ----------
+    mu : Quantity
+        Proper motion, an angular rate (e.g. mas/yr) in the observer's time.
+    z : float or array
+        Cosmological redshift of the host (> 0).
+    cosmology : astropy.cosmology.Cosmology, optional
+        Default Planck18.
+
+    Returns
+    -------
+    float or ndarray
+        beta_app = mu D_L/(c (1 + z)) = mu D_A (1 + z)/c, dimensionless; D_L the luminosity
+        distance, (1 + z) the time dilation of the observed motion.
+
+    Notes
+    -----
+    Pearson & Zensus 1987, in Superluminal Radio Sources (CUP), p. 1; Vermeulen & Cohen 1994,
+    ApJ 430, 467, eq. 1 (from memory). For a nearby source (z << 1) it tends to mu D/c.
+    """
+    m = _positive_quantity(mu, u.rad / u.s, "mu")
+    zz = _host_z(z)
+    d = _luminosity_distance_m(zz, cosmology)
+    return _out(m * d / (299792458.0 * (1.0 + zz)))
+
+
+def apparent_speed_limits(beta_app) -> dict:
+    """What an apparent speed alone says about the speed and the viewing angle.
+
+    Parameters
+    ----------
+    beta_app : float or array
+        Apparent transverse speed in units of c (> 0).
+
+    Returns
+    -------
+    dict
+        ``beta_min`` = beta_app/sqrt(1 + beta_app**2) and ``gamma_min`` = sqrt(1 + beta_app**2):
+        the smallest speed and Lorentz factor that can give beta_app; ``theta_critical`` (deg):
+        the viewing angle at which that smallest speed gives it, cot theta = beta_app (where
+        beta_app is largest for that speed, cos theta = beta); ``theta_max`` (deg): the largest
+        viewing angle at which any speed below c gives beta_app, 2 arctan(1/beta_app).
+
+    Notes
+    -----
+    From beta_app = beta sin theta/(1 - beta cos theta) (Rees 1966, Nature 211, 468); the limits
+    as in Vermeulen & Cohen 1994, ApJ 430, 467 and Cohen et al. 2007, ApJ 658, 232 (from memory).
+    """
+    b = _dimensionless(beta_app, "beta_app")
+    bad = b <= 0
+    if bad.any():
+        raise ValueError(f"beta_app must be > 0, got {_first_bad(b, bad)}")
+    h = np.hypot(1.0, b)
+    return {
+        "beta_min": _out(b / h),
+        "gamma_min": _out(h),
+        "theta_critical": _deg(np.arctan2(1.0, b)),
+        "theta_max": _deg(2.0 * np.arctan2(1.0, b)),
+    }
+
+
+def solve_apparent_and_doppler(beta_app, delta):
+    """Lorentz factor and viewing angle from an apparent speed and a Doppler factor.
+
+    Parameters
+    ----------
+    beta_app : float or array
+        Apparent transverse speed in units of c (>= 0).
+    delta : float or array
+        Doppler factor (> 0), e.g. from variability.
+
+    Returns
+    -------
+    gamma : float or ndarray
+        Gamma = (beta_app**2 + delta**2 + 1)/(2 delta).
+    theta : Quantity (deg)
+        Viewing angle (0 = straight at us): tan theta = 2 beta_app/(beta_app**2 + delta**2 - 1).
+
+    Notes
+    -----
+    The closed forms of Ghisellini et al. 1993, ApJ 407, 65 and Hovatta et al. 2009, A&A 494,
+    527, eqs. 4-5 (from memory); the round trip through :func:`apparent_speed` and
+    :func:`doppler_factor` is tested. Every pair with delta > 0 has a solution; beta_app = 0
+    gives theta = 0 (delta > 1) or 180 deg (delta < 1).
+    """
+    b = _dimensionless(beta_app, "beta_app")
+    d = _dimensionless(delta, "delta")
+    if (b < 0).any():
+        raise ValueError(f"beta_app must be >= 0, got {_first_bad(b, b < 0)}")
+    if (d <= 0).any():
+        raise ValueError(f"delta must be > 0, got {_first_bad(d, d <= 0)}")
+    g = (b * b + d * d + 1.0) / (2.0 * d)
+    th = np.arctan2(2.0 * b, b * b + d * d - 1.0)
+    return _out(g), _deg(th)
+
+
+def variability_brightness_temperature(delta_flux, frequency, timescale, z, *, cosmology=None):
+    """Variability brightness temperature of a flare (the size from its time scale, no beaming).
+
+    Parameters
+    ----------
+    delta_flux : Quantity
+        Amplitude of the flare, a flux density (e.g. Jy).
+    frequency : Quantity
+        Observed frequency.
+    timescale : Quantity
+        Observed variability time scale (e.g. days).
+    z : float
+        Host redshift (> 0).
+    cosmology : astropy.cosmology.Cosmology, optional
+        Default Planck18.
+
+    Returns
+    -------
+    Quantity (K)
+        T_var = Delta S D_L**2/(2 pi k nu**2 tau**2 (1 + z)): the Rayleigh-Jeans brightness
+        temperature of a disc of radius c tau/(1 + z) at the angular-diameter distance, times
+        (1 + z) for the cosmological shift of the temperature, so that the Doppler factor is
+        delta = (T_var/T_int)**(1/3) (:func:`variability_doppler_factor`).
+
+    Notes
+    -----
+    Lahteenmaki & Valtaoja 1999, ApJ 521, 493; Hovatta et al. 2009, A&A 494, 527, eq. 1:
+    T_var = 1.548e-32 Delta S[Jy] d_L[m]**2/(nu[GHz]**2 tau[d]**2 (1 + z)) K (from memory;
+    this function's constant 1/(2 pi k) in those units is 1.544e-32, 0.3% lower).
+    """
+    s = _positive_quantity(delta_flux, u.W / u.m**2 / u.Hz, "delta_flux")
+    nu = _positive_quantity(frequency, u.Hz, "frequency")
+    tau = _positive_quantity(timescale, u.s, "timescale")
+    zz = _host_z(z)
+    d = _luminosity_distance_m(zz, cosmology)
+    k_b = 1.380649e-23  # J/K, exact (SI 2019)
+    return u.Quantity(s * d * d / (2.0 * np.pi * k_b * nu * nu * tau * tau * (1.0 + zz)), u.K)
+
+
+def variability_doppler_factor(t_var, t_int=T_EQUIPARTITION * u.K):
+    """Doppler factor from a variability brightness temperature and an intrinsic limit.
+
+    Parameters
+    ----------
+    t_var : Quantity (K)
+        From :func:`variability_brightness_temperature` (which carries the (1 + z) factor).
+    t_int : Quantity (K)
+        Intrinsic brightness temperature: :data:`T_EQUIPARTITION` (5e10 K, Readhead 1994; the
+        default, as Lahteenmaki & Valtaoja 1999) or :data:`T_INVERSE_COMPTON` (1e12 K).
+
+    Returns
+    -------
+    float or ndarray
+        delta = (T_var/T_int)**(1/3): the exponent 1/3 because the size limit brings delta**2 and
+        the temperature itself one more power (Lahteenmaki & Valtaoja 1999, from memory). A
+        value below 1 is a lower limit only when the flare is unresolved in time.
+    """
+    tv = _positive_quantity(t_var, u.K, "t_var")
+    ti = _positive_quantity(t_int, u.K, "t_int")
+    return _out(np.cbrt(tv / ti))
+
+
+def counterjet_limit(jet_flux, counterjet_upper_limit, alpha: ArrayLike = 0.7, geometry: Geometry = "jet"):
+    """Lower limit on beta cos theta from a counter-jet that is not detected.
+
+    Parameters
+    ----------
+    jet_flux : Quantity or float
+        Flux density of the jet at some distance from the core.
+    counterjet_upper_limit : Quantity or float
+        Upper limit on the counter-jet at the same distance on the other side (same unit).
+    alpha : float
+        Spectral index (S_nu proportional to nu**-alpha).
+    geometry : {"blob", "jet"}
+        p = 3 + alpha (blob) or 2 + alpha (continuous jet, the usual choice for a jet's body).
+
+    Returns
+    -------
+    float or ndarray
+        beta cos theta >= tanh(ln R_min/(2 p)), R_min = jet/counter-jet limit: the jet is at
+        least this fast and at most arccos of it from the line of sight.
+
+    Notes
+    -----
+    Jet/counter-jet ratio of Lind & Blandford 1985, ApJ 295, 358 with R as a lower limit.
+    """
+    if isinstance(jet_flux, u.Quantity) or isinstance(counterjet_upper_limit, u.Quantity):
+        if not (isinstance(jet_flux, u.Quantity) and isinstance(counterjet_upper_limit, u.Quantity)):
+            raise TypeError("jet_flux and counterjet_upper_limit must both be Quantities, or both plain numbers")
+        unit = jet_flux.unit
+        j = _positive_quantity(jet_flux, unit, "jet_flux")
+        c = _positive_quantity(counterjet_upper_limit, unit, "counterjet_upper_limit")
+    else:
+        j, c = _dimensionless(jet_flux, "jet_flux"), _dimensionless(counterjet_upper_limit, "counterjet_upper_limit")
+        for arr, name in ((j, "jet_flux"), (c, "counterjet_upper_limit")):
+            if (arr <= 0).any():
+                raise ValueError(f"{name} must be > 0, got {_first_bad(arr, arr <= 0)}")
+    return beta_cos_theta_from_ratio(j / c, alpha, geometry)
+
+
+def intrinsic_opening_angle(apparent, theta):
+    """Intrinsic full opening angle of a jet from its apparent (projected) one and the viewing angle.
+
+    Parameters
+    ----------
+    apparent : float, array or Quantity
+        Apparent full opening angle on the sky (bare numbers are degrees).
+    theta : float, array or Quantity
+        Viewing angle (0 = straight at us; bare numbers are degrees).
+
+    Returns
+    -------
+    Quantity (deg)
+        From tan(phi_app/2) = tan(phi_int/2)/sin theta (Pushkarev et al. 2009, A&A 507, L33;
+        from memory): a jet seen close to its axis looks much wider than it is.
+    """
+    a = _angle(apparent, "apparent")
+    th = _angle(theta, "theta")
+    return _deg(2.0 * np.arctan(np.tan(a / 2.0) * np.sin(th)))

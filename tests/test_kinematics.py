@@ -432,3 +432,73 @@ def test_exact_head_on_pair_survives_rounding():
 def test_negative_distance_is_refused():
     with pytest.raises(ValueError, match=r"distance must be > 0, got -5.0 km"):
         dk.proper_motions(0.3, 40.0, -5 * u.km)
+
+
+# ---------------------------------------------------------------------------
+# Jets of active galaxies
+# ---------------------------------------------------------------------------
+def test_apparent_speed_from_proper_motion_against_astropy_distances():
+    # beta_app = mu D_A (1 + z)/c (Vermeulen & Cohen 1994, ApJ 430, 467, eq. 1; from memory),
+    # with D_A from astropy's Planck18 as the reference library; and mu D/c for a nearby source
+    from astropy.cosmology import Planck18
+
+    mu = 0.5 * u.mas / u.yr
+    for z in (0.05, 0.5, 2.0):
+        ref = (mu.to(u.rad / u.s).value * Planck18.angular_diameter_distance(z).to_value(u.m) * (1 + z)) / 299792458.0
+        assert_allclose(dk.apparent_speed_from_proper_motion(mu, z), ref, rtol=1e-10)
+    near = 1e-4
+    d = Planck18.comoving_distance(near).to_value(u.m)
+    assert_allclose(dk.apparent_speed_from_proper_motion(mu, near), mu.to(u.rad / u.s).value * d / 299792458.0, rtol=3e-4)
+
+
+@given(st.floats(0.05, 50.0))
+def test_apparent_speed_limits_are_met_exactly(beta_app):
+    # Rees 1966, Nature 211, 468: beta_app = beta sin theta/(1 - beta cos theta), largest (Gamma beta) at
+    # cos theta = beta; the minimum speed gives beta_app exactly at theta_critical, and no speed
+    # below c gives it beyond theta_max = 2 arctan(1/beta_app) (the beta -> 1 limit cot(theta/2))
+    lim = dk.apparent_speed_limits(beta_app)
+    assert_allclose(dk.apparent_speed(lim["beta_min"], lim["theta_critical"]), beta_app, rtol=1e-9)
+    assert_allclose(lim["gamma_min"] * lim["beta_min"], beta_app, rtol=1e-12)  # Gamma beta = beta_app at the minimum
+    th_max = lim["theta_max"].to_value(u.rad)
+    assert_allclose(1 / np.tan(th_max / 2), beta_app, rtol=1e-12)
+    assert dk.apparent_speed(gamma=1e4, theta=lim["theta_max"] * 1.001) < beta_app
+
+
+@given(st.floats(1.001, 30.0), st.floats(0.5, 60.0))
+def test_apparent_speed_and_doppler_factor_round_trip(gamma, theta):
+    # closed forms of Hovatta et al. 2009, A&A 494, 527, eqs. 4-5 (from memory): (beta_app, delta) ->
+    # (Gamma, theta) inverts apparent_speed and doppler_factor
+    b_app = dk.apparent_speed(gamma=gamma, theta=theta)
+    delta = dk.doppler_factor(gamma=gamma, theta=theta)
+    g, th = dk.solve_apparent_and_doppler(b_app, delta)
+    assert_allclose(g, gamma, rtol=1e-9)
+    assert_allclose(th.to_value(u.deg), theta, rtol=1e-7, atol=1e-9)
+
+
+def test_variability_brightness_temperature_constant_and_doppler_factor():
+    # Hovatta et al. 2009, A&A 494, 527, eq. 1 (from memory): T_var = 1.548e-32 dS[Jy] d_L[m]^2 /
+    # (nu[GHz]^2 tau[d]^2 (1 + z)) K; delta_var = (T_var/T_eq)^(1/3) with T_eq = 5e10 K
+    # (Readhead 1994, ApJ 426, 51; Lahteenmaki & Valtaoja 1999, ApJ 521, 493)
+    from astropy.cosmology import Planck18
+
+    z, ds, nu, tau = 0.7, 2.0, 37.0, 60.0
+    t = dk.variability_brightness_temperature(ds * u.Jy, nu * u.GHz, tau * u.d, z)
+    dl = Planck18.luminosity_distance(z).to_value(u.m)
+    published = 1.548e-32 * ds * dl**2 / (nu**2 * tau**2 * (1 + z))
+    assert_allclose(t.to_value(u.K), published, rtol=5e-3)  # 1/(2 pi k) in these units is 1.544e-32
+    assert_allclose(dk.variability_doppler_factor(t), (t.to_value(u.K) / 5e10) ** (1 / 3), rtol=1e-12)
+    assert_allclose(dk.variability_doppler_factor(t, 1e12 * u.K), (t.to_value(u.K) / 1e12) ** (1 / 3), rtol=1e-12)
+    # scalings: T_var ~ dS, 1/nu^2, 1/tau^2
+    t2 = dk.variability_brightness_temperature(2 * ds * u.Jy, 2 * nu * u.GHz, 2 * tau * u.d, z)
+    assert_allclose(t2 / t, 2 / 16, rtol=1e-12)
+
+
+def test_counterjet_limit_and_opening_angle():
+    # a counter-jet below 1/200 of the jet: beta cos theta >= tanh(ln 200/(2 p)) (Lind & Blandford 1985,
+    # ApJ 295, 358); intrinsic opening angle: tan(phi_app/2) = tan(phi_int/2)/sin theta (Pushkarev et al.
+    # 2009, A&A 507, L33; from memory), phi_int ~ phi_app sin theta for narrow jets
+    p = 2.0 + 0.7
+    assert_allclose(dk.counterjet_limit(100 * u.mJy, 0.5 * u.mJy), np.tanh(np.log(200.0) / (2 * p)), rtol=1e-12)
+    assert_allclose(dk.counterjet_limit(100.0, 0.5, 0.7, "jet"), dk.beta_cos_theta_from_ratio(200.0, 0.7, "jet"), rtol=1e-12)
+    assert_allclose(dk.intrinsic_opening_angle(0.2, 5.0).to_value(u.deg), 0.2 * np.sin(np.radians(5.0)), rtol=1e-4)
+    assert_allclose(dk.intrinsic_opening_angle(40.0, 90.0).to_value(u.deg), 40.0, rtol=1e-12)  # side-on: as seen

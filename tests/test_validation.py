@@ -36,6 +36,11 @@ BAD = {
     "distance": [-1 * u.kpc, 0 * u.kpc, 5.0, 1 * u.s],
     "ratio": [-1.0, 0.0, True, "big"],
     "mu": [-1 * u.mas / u.yr, 1.0, 1 * u.s],
+    "host_z": [0.0, -0.5, True, 3000 * u.km / u.s, "0.1", np.inf],
+    "flux_density": [-1 * u.Jy, 0 * u.Jy, 1.0, 1 * u.s],
+    "frequency": [-1 * u.GHz, 37.0, 1 * u.s],
+    "timescale": [-1 * u.d, 0 * u.d, 100.0, 1 * u.m],
+    "temperature": [-1 * u.K, 0 * u.K, 5e10, 1 * u.m],
 }
 
 
@@ -86,6 +91,22 @@ def _api_cases():
     add(dk.solve_proper_motions, mus, {}, 0, "mu", label="mu_approaching", nan=False)
     add(dk.solve_proper_motions, mus, {}, 1, "mu", label="mu_receding", nan=False)
     add(dk.solve_proper_motions, mus, {}, 2, "distance", nan=False)
+    # jets of active galaxies
+    add(dk.apparent_speed_from_proper_motion, [1 * u.mas / u.yr, 0.5], {}, 0, "mu", nan=False)
+    add(dk.apparent_speed_from_proper_motion, [1 * u.mas / u.yr, 0.5], {}, 1, "host_z", label="z")
+    add(dk.apparent_speed_limits, [5.0], {}, 0, "ratio", label="beta_app", nan=False)
+    add(dk.solve_apparent_and_doppler, [5.0, 8.0], {}, 1, "ratio", label="delta")
+    add(dk.intrinsic_opening_angle, [20.0, 10.0], {}, 1, "theta")
+    add(dk.intrinsic_opening_angle, [20.0, 10.0], {}, 0, "theta", label="apparent")
+    add(dk.counterjet_limit, [100.0, 0.5], {}, 1, "ratio", label="counterjet_upper_limit")
+    add(dk.counterjet_limit, [100.0, 0.5], {}, "alpha", "alpha")
+    tv = [1 * u.Jy, 37 * u.GHz, 100 * u.d, 1.0]
+    add(dk.variability_brightness_temperature, tv, {}, 0, "flux_density", label="delta_flux", nan=False)
+    add(dk.variability_brightness_temperature, tv, {}, 1, "frequency", nan=False)
+    add(dk.variability_brightness_temperature, tv, {}, 2, "timescale", nan=False)
+    add(dk.variability_brightness_temperature, tv, {}, 3, "host_z", label="z")
+    add(dk.variability_doppler_factor, [1e12 * u.K], {}, 0, "temperature", label="t_var", nan=False)
+    add(dk.variability_doppler_factor, [1e12 * u.K], {}, "t_int", "temperature", label="t_int", nan=False)
     # fits: a measurement is required, so NaN is an error too
     jp = [-0.1045, 0.1648, 1e-3, 1e-3]
     add(F.fit_jet_pair, jp, {}, 0, "z", label="z_approaching", nan=False)
