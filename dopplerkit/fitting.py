@@ -875,6 +875,48 @@ def _residual_periodicity(t, z1, z2, m1, m2, e1, e2, swap, period, notes, fap_ma
 # ---------------------------------------------------------------------------
 # Joint constraints
 # ---------------------------------------------------------------------------
+def _pairs(values, name, form):
+    out = []
+    for i, v in enumerate(values):
+        if isinstance(v, (str, bytes)) or not hasattr(v, "__len__") or len(v) != 2:
+            raise ValueError(f"{name}[{i}] must be {form}, got {v!r}")
+        out.append(tuple(v))
+    return out
+
+
+LIMIT_QUANTITIES = ("beta_cos_theta", "beta_app", "doppler_factor", "flux_ratio", "beta", "viewing_angle")
+
+
+def _limit(d, i):
+    """A limit dict -> (quantity, side, bound, scale, boost exponent)."""
+    from .kinematics import GEOMETRIES
+
+    where = f"limits[{i}]"
+    if not isinstance(d, dict):
+        raise ValueError(f"{where} must be a dict such as {{'quantity': 'beta_cos_theta', 'lower': 0.8}}, got {d!r}")
+    allowed = {"quantity", "lower", "upper", "scale", "alpha", "geometry"}
+    extra = set(d) - allowed
+    if extra:
+        raise ValueError(f"{where}: unknown keys {sorted(extra)}; allowed {sorted(allowed)}")
+    q = d.get("quantity")
+    if q not in LIMIT_QUANTITIES:
+        raise ValueError(f"{where} quantity must be one of {list(LIMIT_QUANTITIES)}, got {q!r}")
+    sides = [k for k in ("lower", "upper") if k in d]
+    if len(sides) != 1:
+        raise ValueError(f"{where} needs exactly one of 'lower' or 'upper', got {sorted(d)}")
+    side = sides[0]
+    bound = _measured(d[side], f"{where} {side}")
+    scale = d.get("scale", max(0.02 * abs(bound), 0.01))
+    scale = _measured(scale, f"{where} scale", positive=True)
+    pexp = 0.0
+    if q == "flux_ratio":
+        geometry = d.get("geometry", "jet")
+        if geometry not in GEOMETRIES:
+            raise ValueError(f"{where} geometry must be 'blob' or 'jet', got {geometry!r}")
+        pexp = GEOMETRIES[geometry][0] + _measured(d.get("alpha", 0.7), f"{where} alpha")
+    return q, side, bound, scale, pexp
+
+
 def fit_constraints(
     *,
     z_pairs=(),
@@ -882,6 +924,9 @@ def fit_constraints(
     proper_motions=(),
     distance=None,
     flux_ratios=(),
+    apparent_speeds=(),
+    doppler_factors=(),
+    limits=(),
     priors=None,
     relativistic: bool = True,
     start=None,
@@ -902,6 +947,18 @@ def fit_constraints(
         prior, so its uncertainty propagates into beta and theta.
     flux_ratios : sequence of (R, R_err, alpha, geometry)
         Jet/counter-jet flux ratios with spectral index (S ~ nu**-alpha) and "blob"/"jet".
+    apparent_speeds : sequence of (beta_app, beta_app_err)
+        Apparent transverse speeds in units of c (e.g. from
+        :func:`~dopplerkit.kinematics.apparent_speed_from_proper_motion`).
+    doppler_factors : sequence of (delta, delta_err)
+        Doppler factors (e.g. from :func:`~dopplerkit.kinematics.variability_doppler_factor`).
+    limits : sequence of dict
+        One-sided constraints: ``{"quantity": q, "lower": x}`` or ``{"quantity": q, "upper": x}``
+        with q one of "beta_cos_theta" (e.g. :func:`~dopplerkit.kinematics.counterjet_limit`),
+        "beta_app", "doppler_factor", "flux_ratio" (with "alpha" and "geometry"), "beta",
+        "viewing_angle" (deg); optional "scale" (default 2% of the bound, at least 0.01): a limit
+        adds nothing where it is met and ((bound - model)/scale)**2 beyond. Limits are not
+        counted as data in the degrees of freedom.
     priors : dict, optional
         Gaussian priors {"beta": (mean, sd), "viewing_angle": (mean_deg, sd_deg)}.
     relativistic : bool
@@ -993,8 +1050,20 @@ def fit_constraints(
         if len(v) != 2:
             raise ValueError(f"priors[{k!r}] must be (mean, sd), got {v!r}")
         priors[k] = (_measured(v[0], f"priors[{k!r}] mean"), _measured(v[1], f"priors[{k!r}] sd", positive=True))
-    if not (zp or sz or pm or fr):
-        raise ValueError("give at least one measurement (z_pairs, single_z, proper_motions or flux_ratios)")
+    ba = [
+        (_measured(v, f"apparent_speeds[{i}] beta_app", positive=True), _measured(e, f"apparent_speeds[{i}] beta_app_err", positive=True))
+        for i, (v, e) in enumerate(_pairs(apparent_speeds, "apparent_speeds", "(beta_app, beta_app_err)"))
+    ]
+    dl = [
+        (_measured(v, f"doppler_factors[{i}] delta", positive=True), _measured(e, f"doppler_factors[{i}] delta_err", positive=True))
+        for i, (v, e) in enumerate(_pairs(doppler_factors, "doppler_factors", "(delta, delta_err)"))
+    ]
+    lim = [_limit(d, i) for i, d in enumerate(limits)]
+    if not (zp or sz or pm or fr or ba or dl):
+        raise ValueError(
+            "give at least one measurement (z_pairs, single_z, proper_motions, flux_ratios, apparent_speeds or doppler_factors); "
+            "limits and priors alone do not make a fit"
+        )
     d_km = d_err_km = None
     if pm:
         if len(distance) != 2 or not all(isinstance(q, u.Quantity) for q in distance):
@@ -1025,6 +1094,24 @@ def fit_constraints(
             r.append((dist_km - d_km) / d_err_km)
         for R, Re, pexp in fr:
             r.append((_counterjet_ratio(b, omb, th * _DEG, pexp) - R) / Re)
+        if ba or dl or lim:
+            g = np.cosh(eta)
+            one_minus = omb + 2.0 * b * np.sin(th * _DEG / 2.0) ** 2  # 1 - beta cos theta, exact near c
+            model = {
+                "beta_app": b * np.sin(th * _DEG) / one_minus,
+                "doppler_factor": 1.0 / (g * one_minus),
+                "beta_cos_theta": b * np.cos(th * _DEG),
+                "beta": b,
+                "viewing_angle": th,
+            }
+            for v, e in ba:
+                r.append((model["beta_app"] - v) / e)
+            for v, e in dl:
+                r.append((model["doppler_factor"] - v) / e)
+            for q, side, bound, scale, pexp in lim:
+                m = _counterjet_ratio(b, omb, th * _DEG, pexp) if q == "flux_ratio" else model[q]
+                miss = (bound - m) if side == "lower" else (m - bound)
+                r.append(max(miss, 0.0) / scale)
         if "beta" in priors:
             r.append((b - priors["beta"][0]) / priors["beta"][1])
         if "viewing_angle" in priors:
@@ -1038,8 +1125,10 @@ def fit_constraints(
         params.add("distance_kpc", value=d_km / _KPC_KM, min=1e-6)
     # grid start, then refine the best two separated minima
     grid = []
-    for b in (0.05, 0.2, 0.4, 0.6, 0.8, 0.9, 0.97, 0.995):
-        for th in np.linspace(2.5, 177.5, 36):
+    speeds = (0.05, 0.2, 0.4, 0.6, 0.8, 0.9, 0.97, 0.995) + ((0.999, 0.9999, 0.99999) if (ba or dl) else ())
+    angles = np.linspace(2.5, 177.5, 36) if not (ba or dl) else np.concatenate([np.geomspace(0.05, 2.5, 12), np.linspace(2.5, 177.5, 36)])
+    for b in speeds:
+        for th in angles:
             params["eta"].set(value=np.arctanh(b))
             params["viewing_angle"].set(value=th)
             grid.append((float(np.sum(residual(params) ** 2)), b, th))
@@ -1068,6 +1157,16 @@ def fit_constraints(
     _check_bounds(res.params, names, notes)
     if relativistic:
         _near_c(res.params, notes)
+    if lim:  # a limit is not a datum: take it out of the degrees of freedom (and say where one binds)
+        res.ndata -= len(lim)
+        res.nfree -= len(lim)
+        res.redchi = res.chisqr / res.nfree if res.nfree > 0 else np.nan
+        rr = np.asarray(residual(res.params), float)[-(len(lim) + len(priors)) :][: len(lim)]
+        for (q, side, bound, _scale, _p), v in zip(lim, rr, strict=True):
+            if v > 1.0:
+                notes.append(
+                    f"the {side} limit {q} {'>=' if side == 'lower' else '<='} {bound:g} is not met by the best fit: the data pull against it"
+                )
     if res.ndata <= 1:
         notes.append("one measurement cannot fix two parameters: the result is one point of a degenerate curve (see redshift_locus)")
     _quality(res, notes, scale_errors)
@@ -1080,6 +1179,9 @@ def fit_constraints(
     if pm:
         labels.append("distance (its prior)")
     labels += [f"flux ratio {i + 1}" for i in range(len(fr))]
+    labels += [f"apparent speed {i + 1}" for i in range(len(ba))]
+    labels += [f"Doppler factor {i + 1}" for i in range(len(dl))]
+    labels += [f"limit: {q} {'>=' if side == 'lower' else '<='} {bound:g}" for q, side, bound, _s, _p in lim]
     labels += [f"prior on {k.replace('_', ' ')}" for k in ("beta", "viewing_angle") if k in priors]
     model = "constraints" if relativistic else "constraints (Galilean)"
     return KinematicFit(res.params, res, model, notes, {"labels": labels}, residual)

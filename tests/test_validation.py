@@ -132,6 +132,18 @@ def _api_cases():
     for b in [(0.3, 0.0), (0.3, -1.0), (NAN, 0.1), (0.3, NAN), (True, 0.1)]:
         kw = {"z_pairs": [(-0.1045, 0.1648, 1e-3, 1e-3)], "priors": {"beta": b}}
         cases.append(pytest.param(F.fit_constraints, [], kw, "beta", False, id=f"fit_constraints-prior-{b!r}"))
+    for key in ("apparent_speeds", "doppler_factors"):
+        for b in [(NAN, 0.1), (5.0, 0.0), (5.0, -1.0), (-5.0, 0.5), (True, 0.1), (5.0,), "x"]:
+            cases.append(pytest.param(F.fit_constraints, [], {key: [b]}, key, False, id=f"fit_constraints-{key}-{b!r}"))
+    for b in [
+        {"quantity": "beta", "lower": NAN},
+        {"quantity": "beta"},
+        {"quantity": "x", "lower": 1},
+        {"quantity": "beta", "lower": 0.5, "scale": 0},
+        "x",
+    ]:
+        kw = {"apparent_speeds": [(5.0, 0.5)], "limits": [b]}
+        cases.append(pytest.param(F.fit_constraints, [], kw, "limits", False, id=f"fit_constraints-limits-{b!r}"))
     t = np.linspace(0.0, 300.0, 40)
     z1, z2 = np.full(40, -0.05), np.full(40, 0.1)
     for b in [NAN, -1.0, 0.0, True, "x"]:
