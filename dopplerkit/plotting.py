@@ -78,7 +78,7 @@ def plot_population(table, *, path=None, fig=None, truth=None):
     return fig
 
 
-def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=361):
+def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=361, speed_axis: str = "beta", theta_max: float = 180.0):
     """Draw measurement bands in the beta-viewing angle plane.
 
     Parameters
@@ -89,17 +89,29 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
         grid is marked at its best grid point.
     solution : KinematicFit, optional
         Marked with its error bars.
+    speed_axis : {"beta", "gamma"}
+        The vertical axis: beta from 0 to 1, or the Lorentz factor from 1 to 100 on a log scale
+        (for jets of active galaxies, where every band crowds under beta = 1).
+    theta_max : float
+        Largest viewing angle shown (deg).
     """
     from matplotlib.figure import Figure
 
+    if speed_axis not in ("beta", "gamma"):
+        raise ValueError(f"speed_axis must be 'beta' or 'gamma', got {speed_axis!r}")
     if ax is None:
         fig = fig or Figure(figsize=(5.5, 4.2), layout="constrained")
         ax = fig.subplots()
     else:
         fig = ax.figure
-    th = np.linspace(0, 180, n_theta)
-    be = np.linspace(0.0, 0.999, 400)
+    th = np.linspace(0, theta_max, n_theta)
+    if speed_axis == "gamma":
+        gam = np.geomspace(1.0001, 100.0, 400)
+        be = np.sqrt((gam - 1) * (gam + 1)) / gam
+    else:
+        be = np.linspace(0.0, 0.999, 400)
     T, B = np.meshgrid(th, be)
+    Y = np.meshgrid(th, gam)[1] if speed_axis == "gamma" else B  # what the vertical axis shows
     colours = [PALETTE["approaching"], PALETTE["receding"], PALETTE["highlight"], PALETTE["band"], PALETTE["neutral"]]
     for k, band in enumerate(bands):
         c2 = band["chi2"](B, T)
@@ -107,26 +119,28 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
         # bands above the solution's marker (zorder), so a narrow band is never hidden under it
         inside = int(np.sum(c2 <= 1))
         if inside:
-            ax.contourf(T, B, c2, levels=[-1, 1], colors=[col], alpha=0.35, zorder=3)
-            ax.contour(T, B, c2, levels=[4], colors=[col], linewidths=0.8, zorder=3)
+            ax.contourf(T, Y, c2, levels=[-1, 1], colors=[col], alpha=0.35, zorder=3)
+            ax.contour(T, Y, c2, levels=[4], colors=[col], linewidths=0.8, zorder=3)
         if inside < 20:  # (nearly) narrower than the grid, e.g. an exactly determined pair: mark its best point too
             i = np.unravel_index(np.nanargmin(c2), c2.shape)
-            ax.plot(T[i], B[i], "D", ms=7, mew=1.5, mfc="none", mec=col, zorder=4)
+            ax.plot(T[i], Y[i], "D", ms=7, mew=1.5, mfc="none", mec=col, zorder=4)
         ax.plot([], [], color=col, lw=6, alpha=0.5, label=band.get("label", f"measurement {k + 1}"))
     if solution is not None:
         from ._format import with_error
 
         r = solution.result
         tension = f"chi2 {r.chisqr:.3g} for {r.nfree} dof" + (f", p = {solution.p_value:.2g}" if r.nfree > 0 else " (exactly determined)")
-        label = (
-            f"joint: beta {with_error(solution.beta, solution.beta_err)},\n"
-            f"angle {with_error(solution.value('viewing_angle'), solution.error('viewing_angle'))} deg; {tension}"
+        speed = (
+            f"beta {with_error(solution.beta, solution.beta_err)}"
+            if speed_axis == "beta"
+            else f"Gamma {with_error(solution.value('gamma'), solution.error('gamma'))}"
         )
+        label = f"joint: {speed},\nangle {with_error(solution.value('viewing_angle'), solution.error('viewing_angle'))} deg; {tension}"
         ax.errorbar(
             solution.value("viewing_angle"),
-            solution.beta,
+            solution.beta if speed_axis == "beta" else solution.value("gamma"),
             xerr=solution.error("viewing_angle"),
-            yerr=solution.beta_err,
+            yerr=solution.beta_err if speed_axis == "beta" else solution.error("gamma"),
             fmt="o",
             ms=9,
             mfc="none",
@@ -136,9 +150,14 @@ def plot_constraint_plane(bands, *, solution=None, fig=None, ax=None, n_theta=36
             label=label,
         )
     ax.set_xlabel("viewing angle (deg, 0 = towards us)")
-    ax.set_ylabel(r"speed $\beta = v/c$")
-    ax.set_xlim(0, 180)
-    ax.set_ylim(0, 1)
+    ax.set_xlim(0, theta_max)
+    if speed_axis == "gamma":
+        ax.set_yscale("log")
+        ax.set_ylabel(r"Lorentz factor $\Gamma$")
+        ax.set_ylim(1, 100)
+    else:
+        ax.set_ylabel(r"speed $\beta = v/c$")
+        ax.set_ylim(0, 1)
     if bands or solution is not None:  # above the plane, never over a band
         ax.legend(frameon=False, fontsize=7, loc="lower left", bbox_to_anchor=(0.0, 1.0), borderaxespad=0.3)
     return fig

@@ -626,13 +626,24 @@ class PlaneState:
         "single z": "z, error (approaching jet)",
         "proper motions": "mu_a, mu_r (mas/d), error, distance (kpc), distance error",
         "flux ratio": "R, error, alpha (continuous jet)",
+        "apparent speed": "beta_app, error (units of c)",
+        "Doppler factor": "delta, error",
+        "counter-jet limit": "jet flux, counter-jet upper limit (same unit), alpha (continuous jet)",
     }
 
     def add(self, kind: str, values):
         """Add a measurement of a kind in ``KINDS`` from its values (numbers or text); ValueError names a bad one."""
         if kind not in self.KINDS:
             raise ValueError(f"kind must be one of {list(self.KINDS)}, got {kind!r}")
-        need = {"z pair": 3, "single z": 2, "proper motions": 5, "flux ratio": 3}[kind]
+        need = {
+            "z pair": 3,
+            "single z": 2,
+            "proper motions": 5,
+            "flux ratio": 3,
+            "apparent speed": 2,
+            "Doppler factor": 2,
+            "counter-jet limit": 3,
+        }[kind]
         vals = [float(v) for v in values]
         if len(vals) != need:
             raise ValueError(f"{kind} needs {need} numbers ({self.KINDS[kind]}), got {len(vals)}")
@@ -668,14 +679,34 @@ class PlaneState:
                 return ((mu_a.value - ma) / e) ** 2 + ((mu_r.value - mr) / e) ** 2
 
             return f
+        if kind == "apparent speed":
+            ba, e = v
+            return lambda b, th: ((apparent_speed(b, th * u.deg) - ba) / e) ** 2
+        if kind == "Doppler factor":
+            d, e = v
+            return lambda b, th: ((doppler_factor(b, th * u.deg) - d) / e) ** 2
+        if kind == "counter-jet limit":  # the allowed side: chi-square 0 there, large beyond (drawn as a region)
+            from .kinematics import counterjet_limit
+
+            low = float(counterjet_limit(v[0], v[1], v[2], "jet"))
+            return lambda b, th: np.where(b * np.cos(np.radians(th)) >= low, 0.0, 100.0)
         R, e, alpha = v
         return lambda b, th: ((jet_counterjet_ratio(b, th * u.deg, alpha, "jet") - R) / e) ** 2
 
     def solve(self):
         """The joint solution of every measurement (:func:`dopplerkit.fitting.fit_constraints`)."""
         from .fitting import fit_constraints
+        from .kinematics import counterjet_limit
 
-        kw = {"z_pairs": [], "single_z": [], "proper_motions": [], "flux_ratios": []}
+        kw = {
+            "z_pairs": [],
+            "single_z": [],
+            "proper_motions": [],
+            "flux_ratios": [],
+            "apparent_speeds": [],
+            "doppler_factors": [],
+            "limits": [],
+        }
         distance = None
         for kind, v in self.measurements:
             if kind == "z pair":
@@ -686,6 +717,12 @@ class PlaneState:
                 mpd = u.mas / u.d
                 kw["proper_motions"].append((v[0] * mpd, v[2] * mpd, v[1] * mpd, v[2] * mpd))
                 distance = (v[3] * u.kpc, v[4] * u.kpc)
+            elif kind == "apparent speed":
+                kw["apparent_speeds"].append(v)
+            elif kind == "Doppler factor":
+                kw["doppler_factors"].append(v)
+            elif kind == "counter-jet limit":
+                kw["limits"].append({"quantity": "beta_cos_theta", "lower": float(counterjet_limit(v[0], v[1], v[2], "jet"))})
             else:
                 kw["flux_ratios"].append((v[0], v[1], v[2], "jet"))
         import warnings
@@ -762,7 +799,16 @@ class ConstraintPlane:
         self.listing.options = [self.state.label(m) for m in self.state.measurements]
         self.ax.clear()
         bands = [{"label": self.state.label(m), "chi2": self.state.chi2(m)} for m in self.state.measurements]
-        plot_constraint_plane(bands, solution=self.state.solution, ax=self.ax, n_theta=181)
+        # jets of active galaxies crowd under beta = 1: their measurements switch to a Lorentz-factor axis and small angles
+        agn = any(kind in ("apparent speed", "Doppler factor", "counter-jet limit") for kind, _v in self.state.measurements)
+        plot_constraint_plane(
+            bands,
+            solution=self.state.solution,
+            ax=self.ax,
+            n_theta=181,
+            speed_axis="gamma" if agn else "beta",
+            theta_max=45.0 if agn else 180.0,
+        )
         self.image.value = _render_fresh(self.fig)  # the legend above the plane changes size
 
     def _ipython_display_(self):

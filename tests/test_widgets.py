@@ -298,3 +298,18 @@ def test_population_filters_and_the_chosen_row(tmp_path):
     assert_allclose(m["z"][1], res["h_alpha_receding_z"][0], rtol=1e-9)
     ex = PopulationExplorer(res, config=survey / "config.toml")
     assert ex.spec_image.value[:4] == b"\x89PNG" and "beta = " in ex.detail.value
+
+
+def test_constraint_plane_takes_active_galaxy_measurements():
+    # an apparent speed and a Doppler factor of an invented jet (Gamma 8 at 6 deg) fix both (Hovatta et al.
+    # 2009, A&A 494, 527, eqs. 4-5; from memory); a counter-jet limit is drawn as the allowed region, and
+    # the plane switches to a Lorentz-factor axis
+    p = ConstraintPlane()
+    p.state.add("apparent speed", [dk.apparent_speed(gamma=8.0, theta=6.0), 0.4])
+    p.state.add("Doppler factor", [dk.doppler_factor(gamma=8.0, theta=6.0), 1.0])
+    p.state.add("counter-jet limit", [100, 0.2, 0.7])
+    s = p.state.solve()
+    assert_allclose(s.value("gamma"), 8.0, rtol=1e-6)
+    assert_allclose(s.value("viewing_angle"), 6.0, rtol=1e-6)
+    p.redraw()
+    assert p.ax.get_yscale() == "log" and "Lorentz factor" in p.ax.get_ylabel() and p.ax.get_xlim()[1] == 45.0
