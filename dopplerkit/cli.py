@@ -84,6 +84,21 @@ def _build_parser() -> argparse.ArgumentParser:
     c.add_argument("--alpha", type=_finite, default=0.7, help="spectral index, S_nu ~ nu**-alpha (default 0.7)")
     c.add_argument("--pair", nargs=2, type=_finite, metavar=("Z_APPROACHING", "Z_RECEDING"), help="solve a jet/counter-jet redshift pair")
     c.add_argument("--z", type=_finite, default=None, help="read a single redshift as velocities (linear vs relativistic)")
+    c.add_argument(
+        "--proper-motion",
+        type=_finite,
+        default=None,
+        metavar="MAS_PER_YR",
+        help="apparent motion of a jet feature in mas/yr: with --host-z, the apparent speed and every limit it sets",
+    )
+    c.add_argument("--host-z", type=_finite, default=None, metavar="Z", help="cosmological redshift of the host (> 0; Planck18 distances)")
+    c.add_argument(
+        "--doppler",
+        type=_finite,
+        default=None,
+        metavar="DELTA",
+        help="with --proper-motion: a Doppler factor, to solve for Gamma and theta",
+    )
 
     b = sub.add_parser(
         "batch",
@@ -203,8 +218,40 @@ def _calc(args, out) -> int:
             ("radio reading off by", f"{100 * float(t['radio_error']):+.3g} %"),
         ]
         _table("single redshift", rows, out)
+    if args.proper_motion is not None or args.host_z is not None:
+        did = True
+        if args.proper_motion is None or args.host_z is None:
+            raise _UsageError("dopplerkit calc: --proper-motion and --host-z go together")
+        if not args.proper_motion > 0:
+            raise _UsageError(f"dopplerkit calc: --proper-motion must be > 0 mas/yr, got {args.proper_motion:g}")
+        if not args.host_z > 0:
+            raise _UsageError(f"dopplerkit calc: --host-z must be a cosmological redshift > 0, got {args.host_z:g}")
+        import astropy.units as u
+
+        b_app = k.apparent_speed_from_proper_motion(args.proper_motion * u.mas / u.yr, args.host_z)
+        lim = k.apparent_speed_limits(b_app)
+        rows = [
+            ("proper motion (mas/yr), host z", f"{args.proper_motion:g}, {args.host_z:g}"),
+            ("apparent speed beta_app (Planck18 distances)", _fmt(b_app)),
+            ("smallest speed beta_min = beta_app/sqrt(1 + beta_app^2)", _fmt(lim["beta_min"], ".8g")),
+            ("smallest Lorentz factor Gamma_min = sqrt(1 + beta_app^2)", _fmt(lim["gamma_min"])),
+            ("viewing angle at Gamma_min (deg), cot theta = beta_app", _fmt(lim["theta_critical"].value)),
+            ("largest viewing angle for any speed (deg), 2 arctan(1/beta_app)", _fmt(lim["theta_max"].value)),
+        ]
+        if args.doppler is not None:
+            if not args.doppler > 0:
+                raise _UsageError(f"dopplerkit calc: --doppler must be > 0, got {args.doppler:g}")
+            g, th = k.solve_apparent_and_doppler(b_app, args.doppler)
+            rows += [
+                ("with the Doppler factor: Lorentz factor Gamma", _fmt(g)),
+                ("with the Doppler factor: viewing angle (deg)", _fmt(th.value)),
+            ]
+        _table("apparent motion at the host's distance", rows, out)
     if not did:
-        raise _UsageError("dopplerkit calc: give a speed (--beta or --gamma, with --angle), a pair (--pair ZA ZR) or a redshift (--z)")
+        raise _UsageError(
+            "dopplerkit calc: give a speed (--beta or --gamma, with --angle), a pair (--pair ZA ZR), a redshift (--z), "
+            "or a proper motion with its host redshift (--proper-motion MAS_PER_YR --host-z Z)"
+        )
     return EXIT_OK
 
 

@@ -120,3 +120,22 @@ def test_optional_packages_name_their_extra(monkeypatch):
         require("emcee", "posterior sampling")
     with pytest.raises(ImportError, match=r"dopplerkit\.widgets needs the optional package 'ipywidgets'.*dopplerkit\[notebook\]"):
         _widgets()
+
+
+def test_calc_apparent_motion_reading(capsys):
+    # the numbers are those of dopplerkit.kinematics (tested against astropy distances and the
+    # closed forms in tests/test_kinematics.py); here: the reading is complete and refuses bad input
+    import astropy.units as u
+
+    import dopplerkit as dk
+
+    assert main(["calc", "--proper-motion", "0.3", "--host-z", "0.8", "--doppler", "12"]) == 0
+    out = capsys.readouterr().out
+    b = dk.apparent_speed_from_proper_motion(0.3 * u.mas / u.yr, 0.8)
+    assert f"{b:.6g}" in out and "smallest Lorentz factor" in out and "largest viewing angle" in out
+    g, th = dk.solve_apparent_and_doppler(b, 12.0)
+    assert f"{g:.6g}" in out and f"{th.value:.6g}" in out
+    assert main(["calc", "--proper-motion", "0.3"]) == 2
+    assert "--proper-motion and --host-z go together" in capsys.readouterr().err
+    assert main(["calc", "--proper-motion", "0.3", "--host-z", "0"]) == 2
+    assert "--host-z must be a cosmological redshift > 0" in capsys.readouterr().err
