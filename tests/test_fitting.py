@@ -382,3 +382,23 @@ def test_limits_are_one_sided_and_not_data():
         fit_constraints(z_pairs=[(za, zr, 3e-2, 3e-2)], limits=[{"quantity": "speed", "lower": 0.5}])
     with pytest.raises(ValueError, match=r"limits\[0\] needs exactly one of 'lower' or 'upper'"):
         fit_constraints(z_pairs=[(za, zr, 3e-2, 3e-2)], limits=[{"quantity": "beta", "lower": 0.5, "upper": 0.6}])
+
+
+@pytest.mark.slow
+def test_isotropic_angle_prior_gives_the_sin_theta_distribution():
+    # a likelihood flat in the angle (redshifts with enormous errors, the speed held by a prior):
+    # the posterior is the prior. Isotropic: P(theta < t) = (1 - cos t)/2, so the 15.87th percentile
+    # is arccos(1 - 2 x 0.1587) = 46.9 deg and the median 90 deg; uniform in theta: 28.6 deg
+    # (common practice, no source)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        f = fit_constraints(z_pairs=[(-0.05, 0.1, 1e3, 1e3)], priors={"beta": (0.3, 0.05)})
+        iso = f.sample(steps=3000, walkers=40, burn=500, seed=3, angle_prior="isotropic")
+        lo, med, _hi = iso.posterior["summary"]["viewing_angle"]
+        assert abs(lo - 46.9) < 4 and abs(med - 90.0) < 5
+        assert iso.posterior["angle_prior"] == "isotropic" and any("isotropic prior" in n for n in iso.notes)
+        g = fit_constraints(z_pairs=[(-0.05, 0.1, 1e3, 1e3)], priors={"beta": (0.3, 0.05)})
+        lo_u = g.sample(steps=3000, walkers=40, burn=500, seed=3).posterior["summary"]["viewing_angle"][0]
+        assert abs(lo_u - 28.6) < 4
+    with pytest.raises(ValueError, match="angle_prior must be"):
+        f.sample(steps=10, angle_prior="flat")
