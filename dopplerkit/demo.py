@@ -11,6 +11,8 @@ Scenarios
                    ``truth.toml`` with the model parameters and ``epochs.ecsv`` with true shifts.
 ``quasar_dkq7/``   the invented quasar "DKQ-7" at z = 0.871 with an ultra-fast outflow seen as
                    blueshifted Fe XXV He-alpha and Fe XXVI Ly-alpha absorption, 2-10 keV.
+``agn_dka3/``      the invented active galaxy "DKA-3" (z = 0.62): proper motions of four jet knots,
+                   a radio flare and a counter-jet limit, for the apparent-motion inference.
 ``survey/``        200 single-epoch spectra of invented jet sources (one H-alpha jet pair each)
                    plus deliberately bad files, ``truth.ecsv`` and ``config.toml`` for batch fits.
 """
@@ -42,6 +44,24 @@ BINARY = {
 
 #: The invented quasar DKQ-7 with an ultra-fast outflow along the line of sight.
 QUASAR = {"name": "DKQ-7", "z_cosmo": 0.871, "beta_outflow": 0.23, "seed": 7}
+
+#: The invented blazar-like active galaxy DKA-3: one jet at Lorentz factor 11, 4.5 deg from the line
+#: of sight, four moving knots, a radio flare and no counter-jet.
+ACTIVE = {
+    "name": "DKA-3",
+    "z_cosmo": 0.62,
+    "gamma": 11.0,
+    "viewing_angle_deg": 4.5,
+    "knots": 4,
+    "proper_motion_error": 0.06,  # fractional
+    "flare_frequency_ghz": 37.0,
+    "flare_amplitude_jy": 1.8,
+    "t_int_k": 5e10,
+    "timescale_error": 0.12,  # fractional
+    "jet_flux_mjy": 250.0,
+    "counterjet_limit_mjy": 0.8,
+    "seed": 33,
+}
 
 #: The invented survey of jet sources.
 SURVEY = {"n": 200, "seed": 4242, "beta_range": (0.05, 0.30), "angle_range_deg": (15.0, 85.0)}
@@ -249,6 +269,55 @@ def _survey(outdir: Path) -> None:
     (d / "config.toml").write_text(SURVEY_CONFIG)
 
 
+def _active(outdir: Path) -> None:
+    """DKA-3: knots' proper motions, a flare's amplitude and time scale, a counter-jet limit (all invented)."""
+    from astropy.table import Table
+
+    from .io import write_table
+    from .kinematics import apparent_speed, apparent_speed_from_proper_motion, doppler_factor, variability_brightness_temperature
+
+    a = ACTIVE
+    rng = np.random.default_rng(a["seed"])
+    d = outdir / "agn_dka3"
+    d.mkdir(parents=True, exist_ok=True)
+    b_app = float(apparent_speed(gamma=a["gamma"], theta=a["viewing_angle_deg"]))
+    delta = float(doppler_factor(gamma=a["gamma"], theta=a["viewing_angle_deg"]))
+    per_mu = float(apparent_speed_from_proper_motion(1 * u.mas / u.yr, a["z_cosmo"]))  # beta_app of 1 mas/yr
+    mu_true = b_app / per_mu
+    err = a["proper_motion_error"] * mu_true
+    mu = mu_true + rng.normal(0.0, err, a["knots"])
+    write_table(
+        Table(
+            {
+                "knot": [f"K{k + 1}" for k in range(a["knots"])],
+                "mu": np.round(mu, 5) * u.mas / u.yr,
+                "mu_err": np.full(a["knots"], round(err, 5)) * u.mas / u.yr,
+            },
+            meta={"comment": [f"invented active galaxy {a['name']}: proper motions of four jet knots (observer's time)"]},
+        ),
+        d / "knots.ecsv",
+    )
+    # the flare time scale that gives the true Doppler factor at the equipartition limit, then measured with an error
+    t_1d = variability_brightness_temperature(a["flare_amplitude_jy"] * u.Jy, a["flare_frequency_ghz"] * u.GHz, 1 * u.d, a["z_cosmo"])
+    tau_true = float(np.sqrt(t_1d.to_value(u.K) / (a["t_int_k"] * delta**3)))
+    tau = tau_true * (1 + a["timescale_error"] * rng.normal())
+    (d / "measurements.toml").write_text(
+        f"# Invented active galaxy {a['name']}: what an observer measured (see knots.ecsv for the proper motions).\n"
+        f'name = "{a["name"]}"\nz_host = {a["z_cosmo"]}\n\n'
+        "[flare]  # the largest radio flare: amplitude and e-folding time scale\n"
+        f"frequency_ghz = {a['flare_frequency_ghz']}\namplitude_jy = {a['flare_amplitude_jy']}\n"
+        f"timescale_d = {tau:.3f}\ntimescale_err_d = {a['timescale_error'] * tau_true:.3f}\n\n"
+        "[counterjet]  # flux densities at equal distances from the core; the counter-jet is not detected\n"
+        f"jet_mjy = {a['jet_flux_mjy']}\nupper_limit_mjy = {a['counterjet_limit_mjy']}\nalpha = 0.7\n"
+    )
+    (d / "truth.toml").write_text(
+        f"# Invented active galaxy {a['name']}: the parameters the measurements were made from.\n"
+        f'name = "{a["name"]}"\nz_cosmo = {a["z_cosmo"]}\ngamma = {a["gamma"]}\nviewing_angle_deg = {a["viewing_angle_deg"]}\n'
+        f"beta_app = {b_app:.6f}\ndoppler_factor = {delta:.6f}\nproper_motion_mas_per_yr = {mu_true:.6f}\n"
+        f"flare_timescale_d = {tau_true:.4f}\nt_int_k = {a['t_int_k']:g}\nseed = {a['seed']}\n"
+    )
+
+
 def generate(outdir: str | Path | None = None) -> Path:
     """Regenerate every demo scenario into ``outdir`` (default: the source tree's data_demo/)."""
     out = Path(outdir) if outdir is not None else default_data_dir()
@@ -256,6 +325,7 @@ def generate(outdir: str | Path | None = None) -> Path:
     _binary(out)
     _quasar(out)
     _survey(out)
+    _active(out)
     return out
 
 

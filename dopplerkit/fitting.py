@@ -343,6 +343,7 @@ class KinematicFit:
         flat = res.flatchain.copy()
         if "eta" in flat.columns:
             flat["beta"] = np.tanh(flat["eta"])
+            flat["gamma"] = np.cosh(flat["eta"])
         summary = {c: tuple(np.percentile(flat[c], [15.87, 50.0, 84.13])) for c in flat.columns if not c.startswith("__")}
         tau = getattr(res, "acor", None)
         self.posterior = {

@@ -354,17 +354,26 @@ def plot_kinematic_fit(fit, *, fig=None, path=None, n_grid: int = 121):
     b0, t0 = fit.beta, float(fit.value("viewing_angle"))
     be, te = fit.beta_err, fit.error("viewing_angle")
     c0 = float(fit.result.chisqr)
+    # fast jets (active galaxies) crowd under beta = 1: their planes show the Lorentz factor on a log axis
+    use_gamma = b0 > 0.9
+    g0, ge = float(fit.value("gamma")), fit.error("gamma")
+
+    def speed(y):  # the vertical axis -> beta
+        return np.sqrt((y - 1.0) * (y + 1.0)) / y if use_gamma else y
+
     fig = fig or Figure(figsize=(10.0, 3.9), layout="constrained")
     fig.clear()
     ax, axz, axr = fig.subplots(1, 3, width_ratios=[1.15, 1.0, 1.0])
     levels = [c0 + d for d in DELTA_CHI2_2D]
     col = PALETTE["approaching"]
     # whole plane
-    T, B = np.meshgrid(np.linspace(0.0, 180.0, n_grid), np.linspace(0.0, 0.995, n_grid))
-    R = residuals(B, T)
+    t_hi = min(180.0, max(45.0, 3.0 * t0)) if use_gamma else 180.0
+    ys = np.geomspace(1.0001, 100.0, n_grid) if use_gamma else np.linspace(0.0, 0.995, n_grid)
+    T, B = np.meshgrid(np.linspace(0.0, t_hi, n_grid), ys)
+    R = residuals(speed(B), T)
     labels = list(fit.data.get("labels", [])) or [f"measurement {i + 1}" for i in range(R.shape[0])]
     # each measurement alone: where it is met within 1 sigma (priors and the distance are not drawn)
-    colours = [PALETTE["receding"], PALETTE["highlight"], PALETTE["neutral"], PALETTE["band"]]
+    colours = [PALETTE["receding"], PALETTE["highlight"], PALETTE["neutral"], PALETTE["band"], "#7a5195", "#2f8f5b"]
     drawn = 0
     for rk, name in zip(R, labels, strict=False):
         if name.startswith(("prior", "distance")) or not (np.nanmin(rk) < 0 < np.nanmax(rk)):
@@ -378,27 +387,36 @@ def plot_kinematic_fit(fit, *, fig=None, path=None, n_grid: int = 121):
             break
     C = np.sum(R**2, axis=0)
     ax.contourf(T, B, C, levels=[-np.inf, levels[0]], colors=[col], alpha=0.8)
-    ax.plot(t0, b0, "+", ms=10, mew=1.5, color="k", label="joint best fit")
+    ax.plot(t0, g0 if use_gamma else b0, "+", ms=10, mew=1.5, color="k", label="joint best fit")
     ax.legend(fontsize=6.5, frameon=True, framealpha=0.85, loc="upper right")
-    ax.set_xlim(0, 180)
-    ax.set_ylim(0, 1)
+    ax.set_xlim(0, t_hi)
     ax.set_xlabel("viewing angle (deg; 0 = towards us)")
-    ax.set_ylabel(r"speed $\beta = v/c$")
+    if use_gamma:
+        ax.set_yscale("log")
+        ax.set_ylim(1, 100)
+        ax.set_ylabel(r"Lorentz factor $\Gamma$")
+    else:
+        ax.set_ylim(0, 1)
+        ax.set_ylabel(r"speed $\beta = v/c$")
     ax.set_title("the whole plane: each measurement alone (1 sigma)", fontsize=8, loc="left")
     # close view: +-5 sigma (or a small box when the errors are not finite)
-    db = 5 * be if np.isfinite(be) and be > 0 else 0.02
     dt = 5 * te if np.isfinite(te) and te > 0 else 2.0
-    bl, bh = max(b0 - db, 0.0), min(b0 + db, 0.9999999)
     tl, th = max(t0 - dt, 0.0), min(t0 + dt, 180.0)
-    Tz, Bz = np.meshgrid(np.linspace(tl, th, 61), np.linspace(bl, bh, 61))
-    Cz = chi2(Bz, Tz)
+    if use_gamma:
+        dg = 5 * ge if np.isfinite(ge) and ge > 0 else 0.2 * g0
+        yl, yh, y0, ye = max(g0 - dg, 1.0001), g0 + dg, g0, ge
+    else:
+        db = 5 * be if np.isfinite(be) and be > 0 else 0.02
+        yl, yh, y0, ye = max(b0 - db, 0.0), min(b0 + db, 0.9999999), b0, be
+    Tz, Bz = np.meshgrid(np.linspace(tl, th, 61), np.linspace(yl, yh, 61))
+    Cz = chi2(speed(Bz), Tz)
     axz.contourf(Tz, Bz, Cz, levels=[-np.inf, levels[0], levels[1]], colors=[col, PALETTE["band"]], alpha=0.55)
     axz.contour(Tz, Bz, Cz, levels=levels, colors=["k", "0.4"], linewidths=0.7)
-    axz.errorbar(t0, b0, xerr=te, yerr=be, fmt="o", ms=4, color="k", label="best fit +- 1 sigma (each alone)")
+    axz.errorbar(t0, y0, xerr=te, yerr=ye, fmt="o", ms=4, color="k", label="best fit +- 1 sigma (each alone)")
     axz.plot([], [], color=col, lw=6, alpha=0.55, label="joint 68.3%")
     axz.plot([], [], color=PALETTE["band"], lw=6, alpha=0.55, label="joint 95.4%")
     axz.set_xlabel("viewing angle (deg)")
-    axz.set_ylabel(r"speed $\beta$")
+    axz.set_ylabel(r"Lorentz factor $\Gamma$" if use_gamma else r"speed $\beta$")
     axz.ticklabel_format(useOffset=True, style="plain")
     axz.legend(fontsize=6.5, frameon=True, framealpha=0.85, loc="lower left", bbox_to_anchor=(0.0, 1.0), borderaxespad=0.2)
     # residuals
@@ -416,7 +434,7 @@ def plot_kinematic_fit(fit, *, fig=None, path=None, n_grid: int = 121):
     r = fit.result
     stat = f"chi2 {r.chisqr:.3g} for {r.nfree} dof" + (f", p = {fit.p_value:.2g}" if r.nfree > 0 else " (exactly determined)")
     fig.suptitle(
-        f"{fit.model}: beta {with_error(b0, be)}, viewing angle {with_error(t0, te)} deg; {stat}",
+        f"{fit.model}: {f'Gamma {with_error(g0, ge)}' if use_gamma else f'beta {with_error(b0, be)}'}, viewing angle {with_error(t0, te)} deg; {stat}",
         fontsize=9,
     )
     if path:
