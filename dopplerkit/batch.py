@@ -109,7 +109,7 @@ SPECTRUM_EXTENSIONS = (".fits", ".fit", ".fts", ".fits.gz", ".ecsv", ".csv", ".t
 
 _ALLOWED = {
     "line": {"name", "rest", "medium", "components", "label"},
-    "kinematics": {"model", "beta_max"},
+    "kinematics": {"model", "beta_max", "constraints"},
     "spectra": {"medium", "spectral_unit", "flux_unit"},
     "fit": {"tie", "kind", "continuum", "continuum_degree", "window", "window_kms", "z_min", "z_max"},
     "host": {"lines", "z"},
@@ -147,10 +147,14 @@ class BatchConfig:
     beta_max: float = 0.5
     host_lines: object = "auto"
     host_z: float = 0.0
+    constraints: tuple = ()
 
     def as_dict(self) -> dict:
         """The configuration as a plain dict (what workers receive)."""
-        return {k: (list(map(dict, v)) if k == "lines" else list(v) if isinstance(v, tuple) else v) for k, v in self.__dict__.items()}
+        return {
+            k: (list(map(dict, v)) if k in ("lines", "constraints") else list(v) if isinstance(v, tuple) else v)
+            for k, v in self.__dict__.items()
+        }
 
     @property
     def hash(self) -> str:
@@ -211,11 +215,67 @@ def load_config(path: str | Path) -> BatchConfig:
             data = tomllib.load(fh)
     except tomllib.TOMLDecodeError as exc:
         _err(f"{path}: not valid TOML ({exc})")
-    return parse_config(data, str(path))
+    return parse_config(data, str(path), base=path.parent)
 
 
-def parse_config(data: dict, where: str = "config") -> BatchConfig:
-    """Validate a configuration given as a dict (the parsed TOML)."""
+#: Columns of a per-object constraints table ([kinematics] constraints): what each adds to the fit.
+CONSTRAINT_COLUMNS = {
+    "object": "matched to the spectrum's file name without its extension (required)",
+    "beta_app": "apparent transverse speed in units of c (with beta_app_err)",
+    "beta_app_err": "its 1-sigma error",
+    "doppler": "a Doppler factor, e.g. from variability (with doppler_err)",
+    "doppler_err": "its 1-sigma error",
+    "beta_cos_theta_min": "a lower limit on beta cos theta, e.g. from a counter-jet that is not detected",
+}
+
+
+def _constraints_table(path_text, where, base):
+    """[kinematics] constraints = "table.ecsv" -> tuple of per-object dicts (sorted by object)."""
+    from astropy.table import Table
+
+    path = Path(path_text)
+    if not path.is_absolute() and base is not None:
+        path = Path(base) / path
+    if not path.is_file():
+        _err(f"{where}: [kinematics] constraints {str(path_text)!r}: no such file ({str(path)!r})")
+    try:
+        t = Table.read(path)
+    except Exception as exc:
+        _err(f"{where}: [kinematics] constraints {str(path)!r} cannot be read as a table ({exc})")
+    cols = set(t.colnames)
+    if "object" not in cols:
+        _err(f"{where}: [kinematics] constraints {str(path)!r} needs an 'object' column; columns: {sorted(cols)}")
+    extra = cols - set(CONSTRAINT_COLUMNS)
+    if extra:
+        _unknown(where, f"[kinematics] constraints table {path.name}", extra, set(CONSTRAINT_COLUMNS))
+    for a, b in (("beta_app", "beta_app_err"), ("doppler", "doppler_err")):
+        if (a in cols) != (b in cols):
+            _err(f"{where}: [kinematics] constraints {str(path)!r}: {a} and {b} go together")
+    out, seen = [], set()
+    for i, r in enumerate(t):
+        name = str(r["object"]).strip()
+        if not name or name in seen:
+            _err(f"{where}: [kinematics] constraints {str(path)!r} row {i + 1}: object {name!r} is empty or repeated")
+        seen.add(name)
+        entry = {"object": name}
+        for k in CONSTRAINT_COLUMNS:
+            if k == "object" or k not in cols or np.ma.is_masked(r[k]):
+                continue
+            v = float(r[k])
+            if not math.isfinite(v) or (k != "beta_cos_theta_min" and v <= 0) or (k == "beta_cos_theta_min" and not -1 < v < 1):
+                allowed = "in (-1, 1)" if k == "beta_cos_theta_min" else "> 0"
+                _err(f"{where}: [kinematics] constraints {str(path)!r} row {i + 1} ({name}): {k} must be finite and {allowed}, got {v!r}")
+            entry[k] = v
+        out.append(entry)
+    return tuple(tuple(sorted(e.items())) for e in sorted(out, key=lambda e: e["object"]))
+
+
+def parse_config(data: dict, where: str = "config", base: str | Path | None = None) -> BatchConfig:
+    """Validate a configuration given as a dict (the parsed TOML).
+
+    ``base``: the directory that relative paths in the configuration (``[kinematics] constraints``)
+    are taken from (the configuration file's; default the current directory).
+    """
     unknown = set(data) - set(_ALLOWED)
     if unknown:
         _unknown(where, "sections", unknown, _ALLOWED)
@@ -278,6 +338,13 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
         _err(f"{where}: [kinematics] model must be one of {sorted(MODELS)}, got {model!r}")
     if model == "jet-pair" and not any(ln["components"] == 2 for ln in lines):
         _err(f"{where}: [kinematics] model 'jet-pair' needs a line with components = 2 (approaching and receding)")
+    constraints = ()
+    if "constraints" in kin:
+        if model != "jet-pair":
+            _err(f"{where}: [kinematics] constraints adds measurements to the jet-pair fit: set model = 'jet-pair'")
+        if not isinstance(kin["constraints"], str):
+            _err(f"{where}: [kinematics] constraints must be the path of a table (ECSV or CSV), got {kin['constraints']!r}")
+        constraints = _constraints_table(kin["constraints"], where, base)
     sp = data.get("spectra", {})
     bad = set(sp) - _ALLOWED["spectra"]
     if bad:
@@ -359,6 +426,7 @@ def parse_config(data: dict, where: str = "config") -> BatchConfig:
         float(beta_max),
         host_lines,
         host_z,
+        constraints,
     )
 
 
@@ -603,6 +671,26 @@ def _centre_in(value: float, err: float, unit, medium, target) -> tuple[float, f
     return x, abs(x) * abs(err / value) if value else math.nan, "vacuum" if target.is_equivalent(u.m) else ""
 
 
+def _object_constraints(cfg, cache, path) -> dict:
+    """fit_constraints keywords from the [kinematics] constraints row whose object is this file's name."""
+    if not cfg.get("constraints"):
+        return {}
+    if "_constraints" not in cache:
+        cache["_constraints"] = {dict(e)["object"]: dict(e) for e in cfg["constraints"]}
+    name = os.path.basename(path).split(".")[0]
+    e = cache["_constraints"].get(name)
+    if not e:
+        return {}
+    kw: dict = {}
+    if "beta_app" in e:
+        kw["apparent_speeds"] = [(e["beta_app"], e["beta_app_err"])]
+    if "doppler" in e:
+        kw["doppler_factors"] = [(e["doppler"], e["doppler_err"])]
+    if "beta_cos_theta_min" in e:
+        kw["limits"] = [{"quantity": "beta_cos_theta", "lower": e["beta_cos_theta_min"]}]
+    return kw
+
+
 def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     from .io import SpectrumReadError, detect_format, read_arrays
 
@@ -662,9 +750,23 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
                 pairs.append(tuple(row[f"{pre}_{c}_{q}"] for c in ("approaching", "receding") for q in ("z", "z_err")))
             if cfg["tie"]:
                 break  # tied lines share one pair
-        if len(pairs) == 1:
+        extra = _object_constraints(cfg, cache, path)
+        if len(pairs) == 1 and not extra:
             za, ea, zr, er = pairs[0]
             b, be, th, te = jet_pair_closed_form(za, zr, ea, er)
+        elif extra:
+            import warnings
+
+            from .fitting import fit_constraints
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # the notes below carry what needs care
+                f = fit_constraints(z_pairs=[(p[0], p[2], p[1], p[3]) for p in pairs], **extra)
+            b, be, th, te = f.beta, f.beta_err, f.value("viewing_angle"), f.error("viewing_angle")
+            row["constraints"] = ", ".join(k.replace("_", " ") for k in ("apparent_speeds", "doppler_factors", "limits") if extra.get(k))
+            notes += [n for n in f.notes if n not in notes and "close to c" not in n]
+            if f.p_value < 1e-3:
+                flags.add("poor_fit")
         else:
             from .fitting import fit_constraints
 
@@ -1005,6 +1107,7 @@ _TEXT_COLUMNS = (
     "flags",
     "continuum",
     "host",
+    "constraints",
     "axis_unit",
     "medium",
     "file_hash",
@@ -1022,6 +1125,7 @@ _TAIL_COLUMNS = [
     "p_value",
     "continuum",
     "host",
+    "constraints",
     "flags",
     "axis_unit",
     "medium",

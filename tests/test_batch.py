@@ -791,3 +791,62 @@ def test_progress_and_diagnostics_go_through_logging(small, tmp_path, caplog):
     messages = [r.getMessage() for r in caplog.records if r.name == "dopplerkit.batch"]
     assert any("created the output directory" in m for m in messages)
     assert any(m.startswith("ok ") and "spectra/s" in m for m in messages)
+
+
+def test_per_object_constraints_join_the_pair_fit(tmp_path):
+    # [kinematics] constraints: a table of apparent speeds, Doppler factors and counter-jet limits per object,
+    # added to the redshift pair in one fit (dopplerkit.fitting.fit_constraints; Rees 1966 for beta_app)
+    from astropy.table import Table
+
+    from dopplerkit.batch import ConfigError, parse_config, run_batch
+    from dopplerkit.demo import default_data_dir
+
+    survey = default_data_dir() / "survey"
+    truth = {str(r["file"]): r for r in Table.read(survey / "truth.ecsv")}
+    src = tmp_path / "spectra"
+    src.mkdir()
+    for name in ("dkj_001.fits", "dkj_002.fits"):
+        (src / name).write_bytes((survey / "spectra" / name).read_bytes())
+    t1 = truth["dkj_001.fits"]
+    b_app = float(dk.apparent_speed(float(t1["beta"]), float(t1["viewing_angle"])))
+    Table({"object": ["dkj_001"], "beta_app": [b_app], "beta_app_err": [0.01 * b_app], "beta_cos_theta_min": [0.0]}).write(
+        tmp_path / "objects.ecsv"
+    )
+    cfg = tmp_path / "config.toml"
+    cfg.write_text(
+        '[[line]]\nname = "H-alpha"\ncomponents = 2\n[kinematics]\nmodel = "jet-pair"\nconstraints = "objects.ecsv"\n'
+        '[spectra]\nmedium = "vacuum"\n'
+    )
+    _code, t = run_batch(src, cfg, tmp_path / "r.ecsv", workers=1, quiet=True)
+    rows = {str(f): r for f, r in zip(t["file"], t, strict=True)}
+    with_c, without = rows["dkj_001.fits"], rows["dkj_002.fits"]
+    assert with_c["constraints"] == "apparent speeds, limits" and without["constraints"] == ""
+    assert abs(with_c["beta"] - float(t1["beta"])) < 4 * with_c["beta_err"]
+    assert abs(with_c["viewing_angle"] - float(t1["viewing_angle"])) < 4 * with_c["viewing_angle_err"]
+    # the table is part of the configuration: another table, another hash (a resume refits)
+    h1 = parse_config(
+        {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair", "constraints": "objects.ecsv"}}, base=tmp_path
+    ).hash
+    Table({"object": ["dkj_001"], "doppler": [1.2], "doppler_err": [0.1]}).write(tmp_path / "objects.ecsv", overwrite=True)
+    h2 = parse_config(
+        {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair", "constraints": "objects.ecsv"}}, base=tmp_path
+    ).hash
+    assert h1 != h2
+    bad = [
+        ({"object": ["a"], "speed": [1.0]}, "unknown"),
+        ({"object": ["a"], "beta_app": [3.0]}, "beta_app and beta_app_err go together"),
+        ({"object": ["a"], "doppler": [-1.0], "doppler_err": [0.1]}, "doppler must be finite and > 0"),
+        ({"object": ["a", "a"], "doppler": [1.0, 1.0], "doppler_err": [0.1, 0.1]}, "empty or repeated"),
+        ({"name": ["a"]}, "needs an 'object' column"),
+    ]
+    for cols, match in bad:
+        Table(cols).write(tmp_path / "bad.ecsv", overwrite=True)
+        with pytest.raises(ConfigError, match=match):
+            parse_config(
+                {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair", "constraints": "bad.ecsv"}},
+                base=tmp_path,
+            )
+    with pytest.raises(ConfigError, match="no such file"):
+        parse_config(
+            {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair", "constraints": "none.ecsv"}}, base=tmp_path
+        )
