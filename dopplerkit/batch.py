@@ -40,6 +40,7 @@ worker (journal kept; resume with ``--resume``); 130 interrupted (journal kept).
 from __future__ import annotations
 
 import fnmatch
+import functools
 import hashlib
 import json
 import logging
@@ -640,6 +641,14 @@ def _line_units(cfg) -> dict:
     return out
 
 
+@functools.lru_cache(maxsize=64)
+def _flux_column_for(flux_unit: str, axis_unit: str) -> tuple[str, float]:
+    """:func:`_flux_column` for unit strings, remembered (the same pair repeats across a directory)."""
+    from .io import _parse_unit
+
+    return _flux_column(_parse_unit(flux_unit) * _parse_unit(axis_unit))
+
+
 def _flux_column(unit) -> tuple[str, float]:
     """(column suffix, factor) for an integrated line flux in ``unit`` (flux density x axis unit)."""
     import astropy.units as u
@@ -652,14 +661,20 @@ def _flux_column(unit) -> tuple[str, float]:
     return "flux_relative", 1.0
 
 
+@functools.lru_cache(maxsize=256)
+def _scale(unit, target):
+    """Factor from ``unit`` to ``target`` when they are the same kind (None otherwise), remembered."""
+    return float(unit.to(target)) if unit.is_equivalent(target) else None
+
+
 def _centre_in(value: float, err: float, unit, medium, target) -> tuple[float, float, str]:
     """A line centre and its error from the file's axis unit into ``target``; and the medium of the
     result when it is a wavelength ("" otherwise). Lengths to lengths keep the file's medium;
     across kinds an air wavelength is made vacuum first (frequencies and energies are vacuum)."""
     import astropy.units as u
 
-    if unit.is_equivalent(target):
-        k = float(unit.to(target))
+    k = _scale(unit, target)
+    if k is not None:
         return value * k, abs(err * k), (medium or "") if target.is_equivalent(u.m) else ""
     q = value * unit
     if unit.is_equivalent(u.m) and medium == "air":
@@ -709,7 +724,10 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         raise ValueError("the file has no uncertainty column (uncertainty, error or ivar): line centres need per-pixel errors")
     import astropy.units as u
 
-    if u.Unit(arr.axis_unit).is_equivalent(u.m) and arr.medium is None:
+    from .io import _parse_unit
+
+    axis_u = _parse_unit(arr.axis_unit)  # parsed once per unit string (a cache): this runs for every file
+    if axis_u.is_equivalent(u.m) and arr.medium is None:
         raise ValueError(
             "wavelength medium unknown: the file does not say (MEDIUM keyword, CTYPE1 AWAV/WAVE) and [spectra] medium is not set"
         )
@@ -717,8 +735,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     if "_units" not in cache:
         cache["_units"] = _line_units(cfg)
     canon = cache["_units"]
-    axis_u = u.Unit(arr.axis_unit)
-    flux_col, flux_k = _flux_column(u.Unit(arr.flux_unit) * axis_u)
+    flux_col, flux_k = _flux_column_for(arr.flux_unit, arr.axis_unit)
     flags = set()
     notes: list = []
     redchi, pvals, conts, hosts = [], [], [], []
@@ -732,7 +749,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         for r in rows:
             pre = f"{slug(r['line'])}_{r['component']}"
             target = canon.get(slug(r["line"]), arr.axis_unit)
-            c, ce, medium = _centre_in(float(r["centre"]), float(r["centre_err"]), axis_u, arr.medium, u.Unit(target))
+            c, ce, medium = _centre_in(float(r["centre"]), float(r["centre_err"]), axis_u, arr.medium, _parse_unit(target))
             row[f"{pre}_centre"], row[f"{pre}_centre_err"] = c, ce
             if medium:
                 row["medium"] = medium
