@@ -12,6 +12,7 @@ browser download). Locally without it the test is skipped with that reason; in C
 
 from __future__ import annotations
 
+import contextlib
 import os
 import re
 import socket
@@ -178,92 +179,77 @@ def _shots(page, key, when):
     print(f"\nscreenshot {path}")
 
 
-def test_notebook_01_speed_control_changes_delta_readout(serve):
-    from playwright.sync_api import expect, sync_playwright
+@contextlib.contextmanager
+def _notebook(serve, key, ready, n_figures):
+    """Serve notebook ``key``, open it, check its figures, screenshot it; yield the page; screenshot it again."""
+    from playwright.sync_api import sync_playwright
 
-    url = serve("01")
+    url = serve(key)
     with sync_playwright() as p:
-        browser, page = _open(p, url, ".dk-readout .dk-delta")
+        browser, page = _open(p, url, ready)
         try:
-            readout = page.locator(".dk-readout .dk-delta").first
-            assert readout.inner_text() == f"{dk.doppler_factor(0.24, 57 * u.deg):.5f}"
-            _check_figures(page, "01", 2)  # the explorer and the constraint plane
-            _shots(page, "01", "start")
-            box = page.locator(".dk-speed-text input").first
-
-            def enter():
-                box.fill("0.6")
-                box.press("Enter")
-
-            _image_changes(page, ".dk-explorer img.dk-figure", enter)
-            expect(readout).to_have_text(f"{dk.doppler_factor(0.6, 57 * u.deg):.5f}", timeout=60_000)
-            _shots(page, "01", "after")
+            _check_figures(page, key, n_figures)
+            _shots(page, key, "start")
+            yield page
+            _shots(page, key, "after")
         finally:
             browser.close()
+
+
+def _enter(page, selector, text):
+    """Type ``text`` into the input under ``selector`` and press Enter."""
+
+    def act():
+        box = page.locator(selector).first
+        box.fill(text)
+        box.press("Enter")
+
+    return act
+
+
+def test_notebook_01_speed_control_changes_delta_readout(serve):
+    from playwright.sync_api import expect
+
+    with _notebook(serve, "01", ".dk-readout .dk-delta", 2) as page:  # the explorer and the constraint plane
+        readout = page.locator(".dk-readout .dk-delta").first
+        assert readout.inner_text() == f"{dk.doppler_factor(0.24, 57 * u.deg):.5f}"
+        _image_changes(page, ".dk-explorer img.dk-figure", _enter(page, ".dk-speed-text input", "0.6"))
+        expect(readout).to_have_text(f"{dk.doppler_factor(0.6, 57 * u.deg):.5f}", timeout=60_000)
 
 
 def test_notebook_02_fit_button_redraws_the_precession_explorer(serve):
-    from playwright.sync_api import expect, sync_playwright
+    from playwright.sync_api import expect
 
-    url = serve("02")
-    with sync_playwright() as p:
-        browser, page = _open(p, url, ".dk-precession img.dk-figure")
-        try:
-            _check_figures(page, "02", 2)  # the model figure and the explorer
-            _shots(page, "02", "start")
-            _image_changes(page, ".dk-precession img.dk-figure", lambda: page.locator(".dk-precession .dk-fit").first.click())
-            # the message comes after the last redraw with the fitted values
-            expect(page.locator(".dk-precession").first).to_contain_text("fitted (curves drawn", timeout=120_000)
-            page.wait_for_timeout(1500)  # the last image reaches the page
-            _shots(page, "02", "after")
-        finally:
-            browser.close()
+    with _notebook(serve, "02", ".dk-precession img.dk-figure", 2) as page:  # the model figure and the explorer
+        _image_changes(page, ".dk-precession img.dk-figure", lambda: page.locator(".dk-precession .dk-fit").first.click())
+        # the message comes after the last redraw with the fitted values
+        expect(page.locator(".dk-precession").first).to_contain_text("fitted (curves drawn", timeout=120_000)
+        page.wait_for_timeout(1500)  # the last image reaches the page
 
 
 def test_notebook_03_host_redshift_changes_the_outflow_reading(serve):
-    from playwright.sync_api import expect, sync_playwright
+    from playwright.sync_api import expect
 
-    url = serve("03")
-    with sync_playwright() as p:
-        browser, page = _open(p, url, ".dk-outflow img.dk-figure")
-        try:
-            _check_figures(page, "03", 2)  # the line fit and the explorer's locus
-            _shots(page, "03", "start")
-            text = page.locator(".dk-outflow-text").first
-            before = text.inner_text()
-            box = page.locator(".dk-outflow-zhost input").first
-
-            def enter():
-                box.fill("0.8")
-                box.press("Enter")
-
-            _image_changes(page, ".dk-outflow img.dk-figure", enter)
-            expect(text).not_to_have_text(before, timeout=60_000)
-            _shots(page, "03", "after")
-        finally:
-            browser.close()
+    with _notebook(serve, "03", ".dk-outflow img.dk-figure", 2) as page:  # the line fit and the explorer's locus
+        text = page.locator(".dk-outflow-text").first
+        before = text.inner_text()
+        _image_changes(page, ".dk-outflow img.dk-figure", _enter(page, ".dk-outflow-zhost input", "0.8"))
+        expect(text).not_to_have_text(before, timeout=60_000)
 
 
 def test_notebook_04_status_filter_changes_the_population_plane(serve):
-    from playwright.sync_api import expect, sync_playwright
+    from playwright.sync_api import expect
 
-    url = serve("04")
-    with sync_playwright() as p:
-        browser, page = _open(p, url, ".dk-population img.dk-figure")
-        try:
-            _check_figures(page, "04", 3)  # the population figure, the explorer's plane and its spectrum
-            _shots(page, "04", "start")
-            button = page.locator(".dk-status button", has_text="suspect").first
-            spectrum = ".dk-population img.dk-population-spectrum"
-            before = page.locator(spectrum).first.get_attribute("src")
-            _image_changes(page, ".dk-population img.dk-figure", button.click)
-            expect(page.locator(".dk-population-detail").first).to_contain_text("suspect", timeout=120_000)
-            page.wait_for_function(  # the chosen suspect row's spectrum, measured again, replaces the first one
-                "([sel, before]) => { const i = document.querySelector(sel); return i && i.src !== before; }",
-                arg=[spectrum, before],
-                timeout=120_000,
-            )
-            page.wait_for_timeout(1000)
-            _shots(page, "04", "after")
-        finally:
-            browser.close()
+    # the population figure, the explorer's plane and its spectrum
+    with _notebook(serve, "04", ".dk-population img.dk-figure", 3) as page:
+        button = page.locator(".dk-status button", has_text="suspect").first
+        spectrum = ".dk-population img.dk-population-spectrum"
+        before = page.locator(spectrum).first.get_attribute("src")
+        _image_changes(page, ".dk-population img.dk-figure", button.click)
+        expect(page.locator(".dk-population-detail").first).to_contain_text("suspect", timeout=120_000)
+        page.wait_for_function(  # the chosen suspect row's spectrum, measured again, replaces the first one
+            "([sel, before]) => { const i = document.querySelector(sel); return i && i.src !== before; }",
+            arg=[spectrum, before],
+            timeout=120_000,
+        )
+        page.wait_for_timeout(1000)

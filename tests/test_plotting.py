@@ -14,14 +14,19 @@ from dopplerkit.models import LineComponent, synthesize_spectrum
 from dopplerkit.plotting import plot_line_fit, plot_precession_fit
 
 
-def test_line_fit_figure(tmp_path):
+def _pair_measured():
+    """An invented jet pair (beta 0.2 at 60 deg) in H-alpha, and its measure_lines table."""
     kms = u.km / u.s
     comps = [LineComponent("H-alpha", z=dk.redshift(0.2, 60), fwhm=800 * kms, strength=2.0)]
     comps.append(LineComponent("H-alpha", z=dk.redshift(0.2, 120), fwhm=800 * kms, strength=1.4))
     s = synthesize_spectrum(np.arange(5200.0, 8600.0, 2.0) * u.AA, comps, snr=40, seed=1)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        t = measure_lines(s, "H-alpha", components=2, method="fast", z_range=(-0.42, 0.73))
+        return s, measure_lines(s, "H-alpha", components=2, method="fast", z_range=(-0.42, 0.73))
+
+
+def test_line_fit_figure(tmp_path):
+    s, t = _pair_measured()
     fig = plot_line_fit(s, t, path=tmp_path / "lines.png")
     ax, axr = fig.axes
     assert "Angstrom" in axr.get_xlabel() and "flux density" in ax.get_ylabel() and "erg" in ax.get_ylabel()
@@ -66,13 +71,7 @@ def test_constraint_plane_shows_the_solution_and_its_tension():
 def test_line_table_draws_itself(tmp_path):
     import pickle
 
-    kms = u.km / u.s
-    comps = [LineComponent("H-alpha", z=dk.redshift(0.2, 60), fwhm=800 * kms, strength=2.0)]
-    comps.append(LineComponent("H-alpha", z=dk.redshift(0.2, 120), fwhm=800 * kms, strength=1.4))
-    s = synthesize_spectrum(np.arange(5200.0, 8600.0, 2.0) * u.AA, comps, snr=40, seed=1)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        t = measure_lines(s, "H-alpha", components=2, method="fast", z_range=(-0.42, 0.73))
+    s, t = _pair_measured()
     fig = t.plot(path=tmp_path / "t.png")  # the spectrum it was measured on, kept with the table
     assert len(fig.axes) == 2 and (tmp_path / "t.png").stat().st_size > 10000
     with pytest.raises(ValueError, match="needs the measured spectrum"):
