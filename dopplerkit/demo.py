@@ -422,7 +422,7 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
     print(f"  line positions: {res / 'dkx1_lines.ecsv'}", file=out)
 
     print("\n== 3. the invented quasar DKQ-7 (data_demo/quasar_dkq7) ==", file=out)
-    from .kinematics import beta_from_redshift, velocity_readings
+    from .kinematics import beta_from_redshift, beta_from_redshift_error, velocity_readings
 
     s = read_spectrum(data / "quasar_dkq7" / "dkq7_xray.fits")
     with warnings.catch_warnings():
@@ -432,9 +432,8 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
     z_kin = (1 + z_tot) / (1 + QUASAR["z_cosmo"]) - 1
     z_kin_err = z_err / (1 + QUASAR["z_cosmo"])  # the host z is taken as exact here
     v = velocity_readings(z_kin)[0]
-    w = 1 + z_kin
     beta = -beta_from_redshift(z_kin)
-    beta_err = 4 * w / (w * w + 1) ** 2 * z_kin_err  # d beta / dz of beta = (w^2 - 1)/(w^2 + 1)
+    beta_err = beta_from_redshift_error(z_kin, z_kin_err)
     linear = -float(v["cz"].value) / 299792.458
     print(
         f"  absorption z = {_pm(z_tot, z_err)} (status {m['status'][0]}); host z = {QUASAR['z_cosmo']}; "

@@ -53,6 +53,7 @@ __all__ = [
     "beaming_factor",
     "beta_cos_theta_from_ratio",
     "beta_from_redshift",
+    "beta_from_redshift_error",
     "boost_exponent",
     "compose_redshift",
     "counterjet_limit",
@@ -353,6 +354,31 @@ def beta_from_redshift(z: ArrayLike):
     with np.errstate(invalid="ignore"):
         w = 1.0 + zz
         return _out(zz * (2.0 + zz) / (w * w + 1.0))
+
+
+def beta_from_redshift_error(z: ArrayLike, z_err: ArrayLike):
+    """1-sigma error of :func:`beta_from_redshift` for a redshift error (first-order propagation).
+
+    Parameters
+    ----------
+    z : float or array
+        Redshift (> -1).
+    z_err : float or array
+        Its 1-sigma error (>= 0), dimensionless.
+
+    Returns
+    -------
+    float or ndarray
+        |d beta/dz| z_err = 4 (1 + z)/((1 + z)**2 + 1)**2 z_err.
+    """
+    zz = _dimensionless(z, "z")
+    e = _dimensionless(z_err, "z_err")
+    if (zz <= -1).any():
+        raise ValueError(f"z must be > -1, got {_first_bad(zz, zz <= -1)}")
+    if (e < 0).any():
+        raise ValueError(f"z_err must be >= 0, got {_first_bad(e, e < 0)}")
+    w = 1.0 + zz
+    return _out(4.0 * w / (w * w + 1.0) ** 2 * e)
 
 
 def aberrate(theta_source, beta=None, *, gamma=None) -> u.Quantity:

@@ -1016,7 +1016,7 @@ class OutflowState:
     def reading(self) -> dict:
         """z_obs, z_outflow and its error, the relativistic line-of-sight speed (positive towards
         us) and its error, the linear reading c|z| and how far it is off (signed fraction)."""
-        from .kinematics import beta_from_redshift
+        from .kinematics import beta_from_redshift, beta_from_redshift_error
         from .lines import rest_value
 
         self.check()
@@ -1032,7 +1032,7 @@ class OutflowState:
         w_err = w * np.hypot(rel, self.z_host_err / (1.0 + self.z_host))
         z = w - 1.0
         beta = -float(beta_from_redshift(z))  # towards us positive
-        beta_err = 4 * w / (w * w + 1) ** 2 * w_err
+        beta_err = beta_from_redshift_error(z, w_err)
         linear = -z  # c z as a speed towards us
         return {
             "rest": float(rest.value),

@@ -502,3 +502,11 @@ def test_counterjet_limit_and_opening_angle():
     assert_allclose(dk.counterjet_limit(100.0, 0.5, 0.7, "jet"), dk.beta_cos_theta_from_ratio(200.0, 0.7, "jet"), rtol=1e-12)
     assert_allclose(dk.intrinsic_opening_angle(0.2, 5.0).to_value(u.deg), 0.2 * np.sin(np.radians(5.0)), rtol=1e-4)
     assert_allclose(dk.intrinsic_opening_angle(40.0, 90.0).to_value(u.deg), 40.0, rtol=1e-12)  # side-on: as seen
+
+
+@given(st.floats(-0.8, 3.0), st.floats(1e-6, 1e-3))
+def test_beta_from_redshift_error_is_the_derivative(z, e):
+    # first-order propagation (Bevington & Robinson 2003, ch. 3; from memory), checked against a central difference
+    h = 1e-6
+    slope = (dk.beta_from_redshift(z + h) - dk.beta_from_redshift(z - h)) / (2 * h)
+    assert_allclose(dk.kinematics.beta_from_redshift_error(z, e), abs(slope) * e, rtol=1e-5)
