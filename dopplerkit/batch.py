@@ -686,6 +686,22 @@ def _centre_in(value: float, err: float, unit, medium, target) -> tuple[float, f
     return x, abs(x) * abs(err / value) if value else math.nan, "vacuum" if target.is_equivalent(u.m) else ""
 
 
+def _report_unmatched_constraints(cfg, paths) -> None:
+    """A constraints row whose object matches no spectrum is never used: say so (a misspelt name
+    would otherwise silently drop a measurement from the fit)."""
+    names = {dict(e)["object"] for e in cfg.constraints}
+    if not names:
+        return
+    found = {os.path.basename(p).split(".")[0] for p in paths}
+    missing = sorted(names - found)
+    if missing:
+        shown = ", ".join(missing[:10]) + (f" and {len(missing) - 10} more" if len(missing) > 10 else "")
+        log.warning(
+            f"dopplerkit batch: warning: {len(missing)} object(s) of [kinematics] constraints match no spectrum file name "
+            f"(without extension) and are not used: {shown}"
+        )
+
+
 def _object_constraints(cfg, cache, path) -> dict:
     """fit_constraints keywords from the [kinematics] constraints row whose object is this file's name."""
     if not cfg.get("constraints"):
@@ -1326,6 +1342,7 @@ def run_batch(
             + (f" matching {pattern!r}" if pattern else f" (extensions {', '.join(SPECTRUM_EXTENSIONS)})")
         )
     _check_output(output, d, paths, pattern, overwrite)
+    _report_unmatched_constraints(cfg, paths)
     if not output.parent.exists():
         output.parent.mkdir(parents=True)
         if not quiet:

@@ -793,7 +793,7 @@ def test_progress_and_diagnostics_go_through_logging(small, tmp_path, caplog):
     assert any(m.startswith("ok ") and "spectra/s" in m for m in messages)
 
 
-def test_per_object_constraints_join_the_pair_fit(tmp_path):
+def test_per_object_constraints_join_the_pair_fit(tmp_path, caplog):
     # [kinematics] constraints: a table of apparent speeds, Doppler factors and counter-jet limits per object,
     # added to the redshift pair in one fit (dopplerkit.fitting.fit_constraints; Rees 1966 for beta_app)
     from astropy.table import Table
@@ -817,7 +817,14 @@ def test_per_object_constraints_join_the_pair_fit(tmp_path):
         '[[line]]\nname = "H-alpha"\ncomponents = 2\n[kinematics]\nmodel = "jet-pair"\nconstraints = "objects.ecsv"\n'
         '[spectra]\nmedium = "vacuum"\n'
     )
-    _code, t = run_batch(src, cfg, tmp_path / "r.ecsv", workers=1, quiet=True)
+    import logging
+
+    Table(
+        {"object": ["dkj_001", "dkj_01"], "beta_app": [b_app, 1.0], "beta_app_err": [0.01 * b_app, 0.1], "beta_cos_theta_min": [0.0, 0.0]}
+    ).write(tmp_path / "objects.ecsv", overwrite=True)  # "dkj_01": a misspelt object, named in a warning
+    with caplog.at_level(logging.WARNING, logger="dopplerkit"):
+        _code, t = run_batch(src, cfg, tmp_path / "r.ecsv", workers=1, quiet=True)
+    assert any("match no spectrum" in r.getMessage() and "dkj_01" in r.getMessage() for r in caplog.records)
     rows = {str(f): r for f, r in zip(t["file"], t, strict=True)}
     with_c, without = rows["dkj_001.fits"], rows["dkj_002.fits"]
     assert with_c["constraints"] == "apparent speeds, limits" and without["constraints"] == ""
