@@ -369,7 +369,7 @@ def beta_from_redshift_error(z: ArrayLike, z_err: ArrayLike):
     Returns
     -------
     float or ndarray
-        |d beta/dz| z_err = 4 (1 + z)/((1 + z)**2 + 1)**2 z_err.
+        abs(d beta/dz) z_err = 4 (1 + z)/((1 + z)**2 + 1)**2 z_err.
     """
     zz = _dimensionless(z, "z")
     e = _dimensionless(z_err, "z_err")
