@@ -9,8 +9,9 @@ The values are laboratory (rest) values. Where the source is marked "from memory
 number was recalled, not copied from the source; check it before publishing a
 sub-km/s result.
 
-Air <-> vacuum conversion uses :func:`specutils.utils.wcs_utils.air_to_vac` and
-``vac_to_air`` (default method Morton 2000, the IAU standard). Mixing an air wavelength
+Air <-> vacuum conversion follows :func:`specutils.utils.wcs_utils.air_to_vac` and
+``vac_to_air`` (default method Morton 2000, the IAU standard; that formula is evaluated here,
+checked against specutils in the tests, so a fresh process need not import specutils). Mixing an air wavelength
 with a vacuum spectral axis never happens silently: :func:`rest_value` converts, given
 the medium of the axis, or raises when the medium is unknown.
 """
@@ -338,6 +339,34 @@ def _check_method(method: str) -> str:
     return method
 
 
+def _morton2000_index(vacuum_aa: np.ndarray) -> np.ndarray:
+    """Refractive index of standard air at a vacuum wavelength in Angstrom: Morton 2000, ApJS 130,
+    403, eq. 8 (the formula and constants of specutils' ``refraction_index(method="Morton2000")``)."""
+    s2 = (1e4 / vacuum_aa) ** 2  # (1 / micrometre)^2
+    return 1.0 + 8.34254e-5 + 2.406147e-2 / (130.0 - s2) + 1.5998e-4 / (38.9 - s2)
+
+
+# The default method by hand (the formula above): specutils' own functions import specutils,
+# gwcs and matplotlib (2-3 s in every fresh process, every batch worker). A test checks these
+# two against specutils' vac_to_air and air_to_vac(scheme="iteration") to 1e-12 relative.
+def _morton2000_vac_to_air(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quantity:
+    aa = wavelength.to_value(u.AA)
+    return aa / _morton2000_index(aa) * u.AA
+
+
+def _morton2000_air_to_vac(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quantity:
+    """Iterate lambda_vac = n(lambda_vac) lambda_air (the index is a function of the vacuum wavelength)."""
+    air = wavelength.to_value(u.AA)
+    vac = air * _morton2000_index(air)
+    for _ in range(30):
+        new = air * _morton2000_index(vac)
+        done = np.all(np.abs(new - vac) <= 1e-15 * np.abs(vac))
+        vac = new
+        if done:
+            break
+    return vac * u.AA
+
+
 def _convert(wavelength, method, fn, **kw) -> u.Quantity:
     """Apply a specutils air/vacuum function above 2000 Angstrom; shorter wavelengths stay as they are."""
     _check_method(method)
@@ -370,6 +399,8 @@ def air_to_vacuum(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quant
     Quantity
         Vacuum wavelengths, in the unit given.
     """
+    if method == "Morton2000":
+        return _convert(wavelength, method, _morton2000_air_to_vac)
     from specutils.utils.wcs_utils import air_to_vac
 
     return _convert(wavelength, method, air_to_vac, scheme="iteration")
@@ -390,6 +421,8 @@ def vacuum_to_air(wavelength: u.Quantity, method: str = "Morton2000") -> u.Quant
     Quantity
         Wavelengths in standard air, in the unit given.
     """
+    if method == "Morton2000":
+        return _convert(wavelength, method, _morton2000_vac_to_air)
     from specutils.utils.wcs_utils import vac_to_air
 
     return _convert(wavelength, method, vac_to_air)

@@ -2,9 +2,14 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
+
 import astropy.units as u
+import numpy as np
 import pytest
 from astropy.tests.helper import assert_quantity_allclose
+from numpy.testing import assert_allclose
 
 from dopplerkit import lines
 
@@ -34,6 +39,34 @@ def test_air_vacuum_worked_examples(air, vacuum):
     tol = 1e-3 if air != 6562.80 else 1e-2
     assert_quantity_allclose(lines.air_to_vacuum(air * u.AA), vacuum * u.AA, atol=tol * u.AA)
     assert_quantity_allclose(lines.vacuum_to_air(vacuum * u.AA), air * u.AA, atol=tol * u.AA)
+
+
+def test_morton2000_by_hand_matches_specutils():
+    # The default method is evaluated in dopplerkit (no specutils import per process); reference:
+    # specutils.utils.wcs_utils (Morton 2000, ApJS 130, 403, eq. 8), the library the project follows.
+    from specutils.utils.wcs_utils import air_to_vac, vac_to_air
+
+    w = np.geomspace(2000.0, 300000.0, 4001) * u.AA
+    assert_allclose(lines.vacuum_to_air(w).to_value(u.AA), vac_to_air(w, method="Morton2000").to_value(u.AA), rtol=1e-13)
+    assert_allclose(
+        lines.air_to_vacuum(w).to_value(u.AA), air_to_vac(w, method="Morton2000", scheme="iteration").to_value(u.AA), rtol=1e-13
+    )
+    # round trip, any length unit, any shape
+    grid = np.geomspace(0.2, 30.0, 60).reshape(3, 20) * u.um
+    assert_allclose(lines.vacuum_to_air(lines.air_to_vacuum(grid)).to_value(u.um), grid.to_value(u.um), rtol=1e-14)
+    assert lines.air_to_vacuum(grid).unit == u.um
+
+
+def test_default_air_vacuum_does_not_import_specutils():
+    # common practice, no source: a fresh batch worker should not pay specutils' import (seconds) for a formula
+    code = (
+        "import sys, astropy.units as u\n"
+        "from dopplerkit.lines import rest_value, air_to_vacuum\n"
+        "rest_value('[O III] 5007', 'AA', medium='vacuum'); air_to_vacuum(6562.8 * u.AA)\n"
+        "print('specutils' in sys.modules)\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "False"
 
 
 def test_air_vacuum_methods_agree_roughly():
