@@ -686,22 +686,37 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None):
         G = A.T @ A
         bvec = A.T @ (yo * w)
         nc, nl = deg + 1, len(rest)
-        best = None
+        combos = []
         for combo in combinations(range(len(cands)), setup.components):
             zs = [cands[c][0] for c in combo]
             fs = [cands[c][1] for c in combo]
-            if any(
+            if not any(
                 abs(zs[i] - zs[j]) < 0.3 * max(fs[i], fs[j]) / C_KMS * (1 + abs(zs[i]))
                 for i in range(len(zs))
                 for j in range(i + 1, len(zs))
             ):
-                continue
-            idx = list(range(nc)) + [nc + c * nl + li for c in combo for li in range(nl)]
+                combos.append(combo)
+        # every allowed set solved in one stacked call (one tiny solve per set, without per-call overhead)
+        sols = {}
+        if combos:
+            idx_all = np.array([list(range(nc)) + [nc + c * nl + li for c in combo for li in range(nl)] for combo in combos])
+            b_all = bvec[idx_all]
             try:
-                sol = np.linalg.solve(G[np.ix_(idx, idx)], bvec[idx])
-            except np.linalg.LinAlgError:
+                stacked = np.linalg.solve(G[idx_all[:, :, None], idx_all[:, None, :]], b_all[..., None])[..., 0]
+                sols = {combo: (stacked[k], b_all[k]) for k, combo in enumerate(combos)}
+            except np.linalg.LinAlgError:  # one singular set: solve them one by one, leaving that one out
+                for k, combo in enumerate(combos):
+                    try:
+                        sols[combo] = (np.linalg.solve(G[np.ix_(idx_all[k], idx_all[k])], b_all[k]), b_all[k])
+                    except np.linalg.LinAlgError:
+                        continue
+        best = None
+        for combo in combos:
+            if combo not in sols:
                 continue
-            gain = float(bvec[idx] @ sol)
+            zs = [cands[c][0] for c in combo]
+            sol, bsub = sols[combo]
+            gain = float(bsub @ sol)
             penalty = np.sum(np.minimum(sol[nc:], 0.0))  # negative line areas are implausible
             # a jet pair must allow equal speeds: (1 + z_a)(1 + z_r) = Gamma^2 >= 1 (transverse Doppler);
             # pairs that cannot (e.g. a jet's H-beta taken for the other jet's H-alpha) come last
