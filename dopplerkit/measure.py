@@ -27,6 +27,7 @@ not a blend, the identification not contradicted), else "suspect" with the reaso
 
 from __future__ import annotations
 
+import math
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -1167,16 +1168,19 @@ def _cont_basis(option, x, k_pl, seg=None):
     """
     kind, d = option
     seg = _segments(x) if seg is None else seg
-    nseg = int(seg.max()) + 1
-    shape = (x / x[x.size // 2]) ** k_pl if kind == "powerlaw" else 1.0
-    t = np.empty_like(x)
-    for sid in range(nseg):
-        m = seg == sid
-        xm = x[m]
-        t[m] = (xm - 0.5 * (xm[0] + xm[-1])) / (0.5 * abs(xm[-1] - xm[0]) or 1.0)
+    # segments are contiguous runs of the sorted window pixels: fill each block by slices
+    edges = [0, *(np.flatnonzero(np.diff(seg)) + 1).tolist(), x.size]
+    nseg = len(edges) - 1
     B = np.zeros((x.size, nseg * (d + 1)))
-    powers = t[:, None] ** np.arange(d + 1)[None, :] * (shape[:, None] if kind == "powerlaw" else 1.0)
-    B[np.arange(x.size)[:, None], seg[:, None] * (d + 1) + np.arange(d + 1)[None, :]] = powers
+    shape = (x / x[x.size // 2]) ** k_pl if kind == "powerlaw" else None
+    for sid in range(nseg):
+        a, b = edges[sid], edges[sid + 1]
+        xm = x[a:b]
+        t = (xm - 0.5 * (xm[0] + xm[-1])) / (0.5 * abs(xm[-1] - xm[0]) or 1.0)
+        col = sid * (d + 1)
+        B[a:b, col] = 1.0 if shape is None else shape[a:b]
+        for k in range(1, d + 1):
+            B[a:b, col + k] = B[a:b, col + k - 1] * t
     return B
 
 
@@ -1247,29 +1251,42 @@ def _flux_at(x, y, sig, mu, sg, others):
     (a dict) where one lies within one FWHM of ``mu`` (the two cannot be told apart there).
     """
     half = 5 * sg
-    if not (np.isfinite(mu) and np.isfinite(sg) and sg > 0):
+    if not (math.isfinite(mu) and math.isfinite(sg) and sg > 0):
         return None
     for o in others:
         if abs(o["mu"] - mu) < _FWHM_GAUSS * max(o["sg"], sg):
             return o
     if not x[0] + half < mu < x[-1] - half:
         return None
-    i0, i1 = np.searchsorted(x, [mu - half, mu + half])  # x is sorted
+    i0, i1 = int(x.searchsorted(mu - half)), int(x.searchsorted(mu + half))  # x is sorted
     if i1 - i0 < 8:
         return None
-    xx, w = x[i0:i1], 1.0 / sig[i0:i1]
     near = [(o["mu"], o["sg"]) for o in others if abs(o["mu"] - mu) < half + 3 * o["sg"]]
-    A = np.empty((xx.size, 3 + len(near)))
-    A[:, 0] = w
-    A[:, 1] = (xx - mu) * (w / half)
-    for j, (c, g) in enumerate([(mu, sg), *near]):
-        A[:, 2 + j] = np.exp(-0.5 * ((xx - c) / g) ** 2) * (w / (g * 2.5066282746310002))
+    # the design matrix by rows (one per column of the fit), its Gram matrix in one product
+    w = 1.0 / sig[i0:i1]
+    d = x[i0:i1] - mu
+    S = np.empty((3 + len(near), d.size))
+    S[0] = w
+    S[1] = d * (w / half)
+    S[2] = np.exp(-0.5 * (d / sg) ** 2) * (w / (sg * 2.5066282746310002))
+    for j, (c, g) in enumerate(near):
+        S[3 + j] = np.exp(-0.5 * ((d + (mu - c)) / g) ** 2) * (w / (g * 2.5066282746310002))
+    M = S @ S.T
+    b = S @ (y[i0:i1] * w)
+    if not near:
+        # the third row of the inverse of a symmetric 3 x 3 matrix by cofactors (no LAPACK call)
+        (a, bb, c), (_, dd, e), (_, _, f) = M.tolist()
+        c20, c21, c22 = bb * e - c * dd, bb * c - a * e, a * dd - bb * bb
+        det = a * (dd * f - e * e) - bb * (bb * f - c * e) + c * c20
+        if not (math.isfinite(det) and det > 0):
+            return None
+        b0, b1, b2 = b.tolist()
+        return (c20 * b0 + c21 * b1 + c22 * b2) / det, math.sqrt(max(c22 / det, 0.0))
     try:
-        cov = np.linalg.inv(A.T @ A)
+        cov = np.linalg.inv(M)
     except np.linalg.LinAlgError:
         return None
-    coef = cov[2] @ (A.T @ (y[i0:i1] * w))
-    return float(coef), float(np.sqrt(max(cov[2, 2], 0.0)))
+    return float(cov[2] @ b), float(np.sqrt(max(cov[2, 2], 0.0)))
 
 
 def _position(setup, rest, z):
