@@ -1293,16 +1293,29 @@ def _position(setup, rest, z):
     return rest * (1 + z) if setup.wavelike else rest / (1 + z)
 
 
-def _companion_evidence(setup, companions, r, z, x, y, sig, others):
+def _companion_evidence(setup, companions, r, z, x, y, sig, others, need="all"):
     """Test one identification of component ``r`` at redshift ``z``: (contradiction or None, [support]).
 
     A companion predicted on top of another fitted component supports the identification when
     that component sits where predicted (within 5 sigma of the centres or 0.1 FWHM) with a
     plausible flux ratio (the two are one gas seen in two lines); otherwise it says nothing.
+
+    ``need`` spares measurements whose answer cannot matter: "all" measures every companion;
+    "against" only the required ones, up to the first contradiction (support is not collected);
+    "support" up to the first support (the contradiction is not looked for); "verdict" the
+    required ones first and stops at a contradiction (otherwise the support is complete). The
+    contradiction found is always the first in catalogue order; support keeps catalogue order.
     """
     against, support = None, []
     flux, flux_err = r["flux"], r["flux_err"]
-    for cname, crest, lo, hi, required in companions:
+    items = list(enumerate(companions))
+    if need == "against":
+        items = [it for it in items if it[1][4]]
+    elif need == "verdict":
+        items = [it for it in items if it[1][4]] + [it for it in items if not it[1][4]]
+    for pos, (cname, crest, lo, hi, required) in items:
+        if (need in ("against", "verdict") and against is not None) or (need == "support" and support):
+            break
         mu = _position(setup, crest, z)
         fw = abs(mu) * r["fwhm"] / C_KMS
         got = _flux_at(x, y, sig, mu, fw / _FWHM_GAUSS, others)
@@ -1314,15 +1327,15 @@ def _companion_evidence(setup, companions, r, z, x, y, sig, others):
             tol = max(5 * np.hypot(got["row"]["centre_err"], crest * r["z_err"]), 0.1 * fw)
             f, fe = got["row"]["flux"], got["row"]["flux_err"]
             if abs(got["mu"] - mu) < tol and lo * flux <= f <= hi * flux and f > _ID_SIGMA * fe:
-                support.append((cname, mu, f / fe))
+                support.append((pos, (cname, mu, f / fe)))
             continue
         f, fe = got
         tol = _ID_SIGMA * np.hypot(fe, lo * flux_err)
         if required and lo * flux - f > tol and against is None:
             against = (cname, mu, lo * flux, f, fe)
         elif f > _ID_SIGMA * fe and lo * flux - tol <= f <= hi * flux + _ID_SIGMA * np.hypot(fe, hi * flux_err):
-            support.append((cname, mu, f / fe))
-    return against, support
+            support.append((pos, (cname, mu, f / fe)))
+    return against, [q for _, q in sorted(support, key=lambda t: t[0])]
 
 
 def _others(rows):
@@ -1367,7 +1380,7 @@ def _check_identification(setup, rows, x, y, sig, host=None, also=()):
         comps = setup.companions[r["lidx"]] if setup.companions else ()
         if not comps or not _usable(r):
             continue
-        against, _ = _companion_evidence(setup, comps, r, r["z"], x, y, sig, others)
+        against, _ = _companion_evidence(setup, comps, r, r["z"], x, y, sig, others, need="against")
         if against is not None:
             cname, mu, need, f, fe = against
             r["flags"].append("id_contradicted")
@@ -1391,7 +1404,7 @@ def _check_alternatives(setup, rows, x, y, sig, others):
         li = grp[0]
         comps = setup.companions[li] if setup.companions else ()
         for r in mine:
-            if not _usable(r) or _companion_evidence(setup, comps, r, r["z"], x, y, sig, others)[1]:
+            if not _usable(r) or _companion_evidence(setup, comps, r, r["z"], x, y, sig, others, need="support")[1]:
                 continue
             best = None
             for name, rest, ev in setup.alternatives:
@@ -1400,7 +1413,7 @@ def _check_alternatives(setup, rows, x, y, sig, others):
                 z = (1 + r["z"]) * setup.rest[li] / rest - 1 if setup.wavelike else (1 + r["z"]) * rest / setup.rest[li] - 1
                 if not zlo <= z <= zhi:
                     continue
-                against, found = _companion_evidence(setup, ev, r, z, x, y, sig, others)
+                against, found = _companion_evidence(setup, ev, r, z, x, y, sig, others, need="verdict")
                 if against is None and found and (best is None or max(q[2] for q in found) > best[2]):
                     best = (name, z, max(q[2] for q in found), found)
             if best is None:
