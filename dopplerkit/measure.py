@@ -449,7 +449,7 @@ def _begin(setup: FitSetup, x, y, sig, window, window_kms):
         xb, yb, sb = _binned(x, y, sig, factor)
         starts, contb, host = _begin(setup, xb, yb, sb, window, window_kms)
         return starts, np.interp(x, xb, contb), host
-    starts, cont = _starts(setup, x, y, sig)
+    starts, cont = _starts(setup, x, y, sig, px_kms=px_kms)
     if not setup.host or setup.kind != "emission":
         return starts, cont, None
     keep = _window_mask(setup, x, starts, window, window_kms)
@@ -460,7 +460,7 @@ def _begin(setup: FitSetup, x, y, sig, window, window_kms):
         return starts, cont, None
     host = _find_host(setup, x, y, sig)
     if host is not None:
-        starts, cont = _starts(setup, x, y, sig, host=host)
+        starts, cont = _starts(setup, x, y, sig, host=host, cont=cont)  # the running median does not change
     return starts, cont, host
 
 
@@ -590,7 +590,7 @@ def _robust_coef(xs, y, degree, iters):
     return coef
 
 
-def _median_continuum(x, y, width_kms: float = 12000.0):
+def _median_continuum(x, y, width_kms: float = 12000.0, px_kms: float | None = None):
     """Running median of the flux over ``width_kms``: the continuum under lines a few times narrower, whatever its shape.
 
     A fixed low-order polynomial over a whole spectrum (a steep power law over 3800-11200
@@ -599,12 +599,12 @@ def _median_continuum(x, y, width_kms: float = 12000.0):
     from scipy.ndimage import median_filter
 
     n = x.size
-    dv = float(_median(np.abs(np.diff(x)) / np.abs(x[1:]))) * C_KMS  # km/s per pixel
+    dv = float(_median(np.abs(np.diff(x)) / np.abs(x[1:]))) * C_KMS if px_kms is None else px_kms  # km/s per pixel
     k = int(np.clip(width_kms / max(dv, 1e-12), 5, max(5, n // 3))) | 1
     return median_filter(y, size=k, mode="nearest")
 
 
-def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None):
+def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None, cont=None, px_kms=None):
     """Starting (z, fwhm_kms, areas) per group and component, plus the continuum.
 
     1. A running-median continuum over 12000 km/s (any shape).
@@ -618,7 +618,8 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None):
     """
     from itertools import combinations
 
-    cont = _median_continuum(x, y)
+    if cont is None:
+        cont = _median_continuum(x, y, px_kms=px_kms)
     sign = 1.0 if setup.kind == "emission" else -1.0
     resid = sign * (y - cont)
     order = np.argsort(x)
@@ -640,7 +641,8 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None):
         rest = setup.rest[grp]
         lo_z = max(setup.z_range[0], (xo[0] / rest.max() - 1) if setup.wavelike else (rest.min() / xo[-1] - 1))
         hi_z = min(setup.z_range[1], (xo[-1] / rest.min() - 1) if setup.wavelike else (rest.max() / xo[0] - 1))
-        step = dx / _median(xo) / 2
+        mid = xo.size // 2
+        step = dx / (xo[mid] if xo.size % 2 else 0.5 * (xo[mid - 1] + xo[mid])) / 2  # xo is sorted: its median
         zg = np.arange(lo_z, hi_z, step)
         if zg.size < 3:
             zg = np.linspace(setup.z_range[0], setup.z_range[1], 3)
@@ -782,38 +784,54 @@ class LineFitter:
             areas.append(ag)
         return zs, ws, areas, p[i:]
 
+    def _layout(self):
+        """Per Gaussian (group, component, line): the index of its z, width and area parameter and
+        its rest value; and the number of line parameters (the continuum's follow)."""
+        lay = getattr(self, "_lay", None)
+        if lay is None:
+            s = self.setup
+            gauss = []
+            i = 0
+            for grp in s.groups:
+                for _ in range(s.components):
+                    for li, lidx in enumerate(grp):
+                        gauss.append((i, i + 1, i + 2 + li, float(s.rest[lidx])))
+                    i += 2 + len(grp)
+            lay = self._lay = (gauss, i)
+        return lay
+
     def _model(self, p, x, B, jac=False):
         """Continuum B @ c plus the Gaussian components; with the Jacobian if asked."""
         s = self.setup
         sign = 1.0 if s.kind == "emission" else -1.0
-        zs, ws, areas, cc = self._unpack(p)
-        f = B @ cc
-        J = np.zeros((x.size, p.size)) if jac else None
-        i = 0
-        for gi, grp in enumerate(s.groups):
-            for k in range(s.components):
-                z, w = zs[gi][k], ws[gi][k]
-                for li, lidx in enumerate(grp):
-                    r = s.rest[lidx]
-                    mu = r * (1 + z) if s.wavelike else r / (1 + z)
-                    dmu_dz = r if s.wavelike else -r / (1 + z) ** 2
-                    sg = mu * w / (C_KMS * _FWHM_GAUSS)
-                    a = areas[gi][k][li]
-                    t = (x - mu) / sg
-                    g = np.exp(-0.5 * t * t) / (sg * np.sqrt(2 * np.pi))
-                    f = f + sign * a * g
-                    if jac:
-                        # d/dmu at fixed sigma, d/dsigma; sigma depends on mu and w
-                        dg_dmu = g * t / sg
-                        dg_dsg = g * (t * t - 1) / sg
-                        dsg_dz = dmu_dz * w / (C_KMS * _FWHM_GAUSS)
-                        dsg_dw = mu / (C_KMS * _FWHM_GAUSS)
-                        J[:, i] += sign * a * (dg_dmu * dmu_dz + dg_dsg * dsg_dz)
-                        J[:, i + 1] += sign * a * dg_dsg * dsg_dw
-                        J[:, i + 2 + li] = sign * g
-                i += 2 + len(grp)
+        gauss, nlp = self._layout()
+        f = B @ p[nlp:]
+        J = None
         if jac:
-            J[:, i:] = B
+            J = np.zeros((x.size, p.size))
+            J[:, nlp:] = B
+        pl = p.tolist()
+        k = 1.0 / (C_KMS * _FWHM_GAUSS)
+        for iz, iw, ia, r in gauss:
+            z, w, a = pl[iz], pl[iw], pl[ia]
+            if s.wavelike:
+                mu, dmu_dz = r * (1 + z), r
+            else:
+                mu, dmu_dz = r / (1 + z), -r / (1 + z) ** 2
+            sg = mu * w * k
+            t = (x - mu) * (1.0 / sg)
+            tt = t * t
+            g = np.exp(-0.5 * tt)
+            g *= 1.0 / (sg * 2.5066282746310002)
+            f = f + (sign * a) * g
+            if jac:
+                # d/dmu at fixed sigma plus d/dsigma (sigma depends on mu and w):
+                # dg/dmu = g t / sg, dg/dsg = g (t^2 - 1) / sg
+                gs = g * (sign * a / sg)
+                tt -= 1.0
+                J[:, iz] += gs * (t * dmu_dz + tt * (dmu_dz * w * k))
+                J[:, iw] += gs * tt * (mu * k)
+                J[:, ia] = sign * g
         return f, J
 
     @classmethod
