@@ -622,7 +622,8 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None, cont=N
         cont = _median_continuum(x, y, px_kms=px_kms)
     sign = 1.0 if setup.kind == "emission" else -1.0
     resid = sign * (y - cont)
-    order = np.argsort(x)
+    # the callers pass sorted pixels: then no reordering copies
+    order = slice(None) if x.size < 2 or bool(np.all(x[1:] > x[:-1])) else np.argsort(x)
     xo, ro = x[order], resid[order] / np.maximum(np.abs(cont[order]), 1e-300)
     dx = _median(np.diff(xo))
     k = np.exp(-0.5 * (np.arange(-6, 7) / 2.0) ** 2)
