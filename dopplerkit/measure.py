@@ -909,9 +909,13 @@ class LineFitter:
                 i += 2 + len(grp)
         scale[i:] = max(_median(np.abs(yw)), 1e-300) / np.maximum(np.max(np.abs(B), axis=0), 1e-300)
 
+        inv_sw = 1.0 / sw
+
         def fun_jac(q):
             f, J = self._model(q * scale, xw, B, jac=True)
-            return (f - yw) / sw, J * scale[None, :] / sw[:, None]
+            J *= scale  # J is a fresh array: scaled in place
+            J *= inv_sw[:, None]
+            return (f - yw) * inv_sw, J
 
         ql, qh = lo / scale, hi / scale
         res = _levenberg_marquardt(fun_jac, p0 / scale, ql, qh)
@@ -1625,6 +1629,8 @@ def _levenberg_marquardt(fun_jac, x0, lo, hi, max_iter: int = 200, chi2_tol: flo
     x = np.clip(np.asarray(x0, float), lo, hi)
     free = np.flatnonzero(lo < hi)
     every = free.size == x.size
+    lof, hif = lo[free], hi[free]
+    diag = np.arange(free.size) * (free.size + 1)  # flat indices of a diagonal
     r, J = fun_jac(x)
     chi = float(r @ r)
     lam = 1e-3
@@ -1635,8 +1641,8 @@ def _levenberg_marquardt(fun_jac, x0, lo, hi, max_iter: int = 200, chi2_tol: flo
         Jf = J if every else J[:, free]
         A = Jf.T @ Jf
         g = Jf.T @ r
-        d = np.diag(A).copy()
-        d[d <= 0] = 1.0
+        d = A.diagonal()
+        d = np.where(d > 0, d, 1.0)
         # the undamped (Gauss-Newton) step: if even it would gain (almost) nothing inside the bounds, stop here
         try:
             gn = np.linalg.solve(A, -g)
@@ -1644,18 +1650,23 @@ def _levenberg_marquardt(fun_jac, x0, lo, hi, max_iter: int = 200, chi2_tol: flo
             gn = None
         if gn is not None and np.all(np.isfinite(gn)):
             xg = x[free] + gn
-            if np.all((xg >= lo[free]) & (xg <= hi[free])) and -float(g @ gn) < chi2_tol:
+            if -float(g @ gn) < chi2_tol and ((xg >= lof) & (xg <= hif)).all():
                 message = "converged"
                 success = True
                 break
         while True:
+            Ad = A.copy()
+            Ad.flat[diag] += lam * d
             try:
-                step = np.linalg.solve(A + lam * np.diag(d), -g)
+                step = np.linalg.solve(Ad, -g)
             except np.linalg.LinAlgError:
                 step = np.full(free.size, np.nan)
-            xn = x.copy()
-            xn[free] = np.minimum(np.maximum(x[free] + step, lo[free]), hi[free])
-            if not np.all(np.isfinite(xn)):
+            if every:
+                xn = np.minimum(np.maximum(x + step, lo), hi)
+            else:
+                xn = x.copy()
+                xn[free] = np.minimum(np.maximum(x[free] + step, lof), hif)
+            if not np.isfinite(xn).all():
                 lam *= 10.0
                 if lam > 1e12:
                     break
@@ -1672,7 +1683,7 @@ def _levenberg_marquardt(fun_jac, x0, lo, hi, max_iter: int = 200, chi2_tol: flo
             message = "no step lowers chi-square further"
             success = True  # a minimum within rounding
             break
-        dx = np.max(np.abs(xn - x) / (np.abs(x) + 1e-12))
+        dx = float((np.abs(xn - x) / (np.abs(x) + 1e-12)).max())
         dchi = chi - chin
         x, r, J, chi = xn, rn, Jn, chin
         lam = max(lam / 10.0, 1e-12)
