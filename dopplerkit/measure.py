@@ -1231,15 +1231,25 @@ def _choose_continuum(setup, x, y, sig, bases, comps):
     L = _profile_columns(setup, x, comps) * (1.0 if setup.kind == "emission" else -1.0)
     best, best_bic = None, np.inf
     w = 1.0 / sig
-    for opt, B in bases.items():
-        A = np.column_stack([B, L]) * w[:, None]
-        b = y * w
+    b = y * w
+    # every option's columns side by side and the line columns last: one Gram matrix, one
+    # projection of the data; each option is then a small solve on its own rows and columns
+    opts = list(bases.items())
+    A = np.column_stack([B for _, B in opts] + [L]) * w[:, None]
+    G, Ab, bb = A.T @ A, A.T @ b, float(b @ b)
+    nl = L.shape[1]
+    lcols = np.arange(A.shape[1] - nl, A.shape[1])
+    start = 0
+    for opt, B in opts:
+        idx = np.concatenate([np.arange(start, start + B.shape[1]), lcols])
+        start += B.shape[1]
         try:
-            coef = np.linalg.solve(A.T @ A, A.T @ b)
+            chi2 = bb - float(Ab[idx] @ np.linalg.solve(G[np.ix_(idx, idx)], Ab[idx]))
         except np.linalg.LinAlgError:
-            coef = np.linalg.lstsq(A, b, rcond=None)[0]
-        r = b - A @ coef
-        bic = float(r @ r) + B.shape[1] * np.log(x.size)  # Schwarz 1978, Ann. Stat. 6, 461
+            Ai = A[:, idx]
+            r = b - Ai @ np.linalg.lstsq(Ai, b, rcond=None)[0]
+            chi2 = float(r @ r)
+        bic = chi2 + B.shape[1] * np.log(x.size)  # Schwarz 1978, Ann. Stat. 6, 461
         if bic < best_bic:
             best, best_bic = opt, bic
     return best
