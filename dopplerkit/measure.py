@@ -657,10 +657,13 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None, cont=N
         cands = []
         for i in peaks:
             below = score < 0.5 * score[i]
-            left = np.flatnonzero(below[:i])
-            right = np.flatnonzero(below[i:])
-            j1 = left[-1] if left.size else 0
-            j2 = i + right[0] if right.size else zg.size - 1
+            # the nearest grid points below half the peak on either side (argmax stops at the first True)
+            lb = below[i - 1 :: -1] if i > 0 else below[:0]
+            k1 = int(lb.argmax()) if lb.size else 0
+            j1 = i - 1 - k1 if lb.size and lb[k1] else 0
+            rb = below[i:]
+            k2 = int(rb.argmax())
+            j2 = i + k2 if rb[k2] else zg.size - 1
             wz = max(zg[j2] - zg[j1], 2 * step)
             fwhm = float(np.clip(wz / (1 + zg[i]) * C_KMS, *setup.fwhm_range))
             cands.append((float(zg[i]), fwhm))
