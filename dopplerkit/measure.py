@@ -693,44 +693,43 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None, cont=N
         G = A.T @ A
         bvec = A.T @ (yo * w)
         nc, nl = deg + 1, len(rest)
-        combos = []
-        for combo in combinations(range(len(cands)), setup.components):
-            zs = [cands[c][0] for c in combo]
-            fs = [cands[c][1] for c in combo]
-            if not any(
-                abs(zs[i] - zs[j]) < 0.3 * max(fs[i], fs[j]) / C_KMS * (1 + abs(zs[i]))
-                for i in range(len(zs))
-                for j in range(i + 1, len(zs))
-            ):
-                combos.append(combo)
-        # every allowed set solved in one stacked call (one tiny solve per set, without per-call overhead)
-        sols = {}
-        if combos:
-            idx_all = np.array([list(range(nc)) + [nc + c * nl + li for c in combo for li in range(nl)] for combo in combos])
+        # the allowed sets: no two members closer than 0.3 of the wider one's width
+        zc_all = np.array([c[0] for c in cands])
+        fc_all = np.array([c[1] for c in cands])
+        sets = np.array(list(combinations(range(len(cands)), setup.components)), dtype=int).reshape(-1, setup.components)
+        allowed = np.ones(len(sets), bool)
+        for i in range(setup.components):
+            for j in range(i + 1, setup.components):
+                zi, zj = zc_all[sets[:, i]], zc_all[sets[:, j]]
+                allowed &= ~(np.abs(zi - zj) < 0.3 * np.maximum(fc_all[sets[:, i]], fc_all[sets[:, j]]) / C_KMS * (1 + np.abs(zi)))
+        sets = sets[allowed]
+        best = None
+        if len(sets):
+            # every allowed set solved in one stacked call (one tiny solve per set, without per-call overhead)
+            lines_of = nc + (sets[:, :, None] * nl + np.arange(nl)).reshape(len(sets), -1)
+            idx_all = np.hstack([np.broadcast_to(np.arange(nc), (len(sets), nc)), lines_of])
             b_all = bvec[idx_all]
+            ok = np.ones(len(sets), bool)
             try:
                 stacked = np.linalg.solve(G[idx_all[:, :, None], idx_all[:, None, :]], b_all[..., None])[..., 0]
-                sols = {combo: (stacked[k], b_all[k]) for k, combo in enumerate(combos)}
             except np.linalg.LinAlgError:  # one singular set: solve them one by one, leaving that one out
-                for k, combo in enumerate(combos):
+                stacked = np.zeros(b_all.shape)
+                for k in range(len(sets)):
                     try:
-                        sols[combo] = (np.linalg.solve(G[np.ix_(idx_all[k], idx_all[k])], b_all[k]), b_all[k])
+                        stacked[k] = np.linalg.solve(G[np.ix_(idx_all[k], idx_all[k])], b_all[k])
                     except np.linalg.LinAlgError:
-                        continue
-        best = None
-        for combo in combos:
-            if combo not in sols:
-                continue
-            zs = [cands[c][0] for c in combo]
-            sol, bsub = sols[combo]
-            gain = float(bsub @ sol)
-            penalty = np.sum(np.minimum(sol[nc:], 0.0))  # negative line areas are implausible
+                        ok[k] = False
+            gain = np.einsum("ij,ij->i", b_all, stacked)
+            penalty = np.minimum(stacked[:, nc:], 0.0).sum(axis=1)  # negative line areas are implausible
+            score_ = gain + 1e6 * penalty * (penalty < 0)
             # a jet pair must allow equal speeds: (1 + z_a)(1 + z_r) = Gamma^2 >= 1 (transverse Doppler);
             # pairs that cannot (e.g. a jet's H-beta taken for the other jet's H-alpha) come last
-            physical = not setup.jet_pair or (1 + min(zs)) * (1 + max(zs)) >= 1 - 3e-3
-            key = (physical, gain + 1e6 * penalty * (penalty < 0))
-            if best is None or key > best[0]:
-                best = (key, combo, sol)
+            zset = zc_all[sets]
+            physical = np.ones(len(sets), bool) if not setup.jet_pair else (1 + zset.min(axis=1)) * (1 + zset.max(axis=1)) >= 1 - 3e-3
+            if ok.any():
+                pool_ = ok & physical if (ok & physical).any() else ok
+                k = int(np.flatnonzero(pool_)[np.argmax(score_[pool_])])  # the first of equals, as before
+                best = (None, tuple(int(c) for c in sets[k]), stacked[k])
         if best is None:
             combo, sol = tuple(range(setup.components)), np.zeros(nc + setup.components * nl)
         else:
@@ -904,13 +903,14 @@ class LineFitter:
         p0 = np.where(free, np.clip(np.asarray(p0, float), lo + 1e-12, hi - 1e-12), lo)
         # scale areas and continuum coefficients so the problem is well conditioned
         scale = np.ones_like(p0)
-        amp_scale = max(_median(np.abs(yw)), _median(sw)) * _median(np.abs(xw)) * 1e-3
+        my = _median(np.abs(yw))
+        amp_scale = max(my, _median(sw)) * _median(np.abs(xw)) * 1e-3
         i = 0
         for grp in s.groups:
             for _ in range(s.components):
                 scale[i + 2 : i + 2 + len(grp)] = amp_scale
                 i += 2 + len(grp)
-        scale[i:] = max(_median(np.abs(yw)), 1e-300) / np.maximum(np.max(np.abs(B), axis=0), 1e-300)
+        scale[i:] = max(my, 1e-300) / np.maximum(np.max(np.abs(B), axis=0), 1e-300)
 
         inv_sw = 1.0 / sw
 
