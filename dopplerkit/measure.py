@@ -721,19 +721,19 @@ def _starts(setup: FitSetup, x, y, sig, n_candidates: int = 5, host=None, cont=N
                         ok[k] = False
             gain = np.einsum("ij,ij->i", b_all, stacked)
             penalty = np.minimum(stacked[:, nc:], 0.0).sum(axis=1)  # negative line areas are implausible
-            score_ = gain + 1e6 * penalty * (penalty < 0)
+            merit = gain + 1e6 * penalty * (penalty < 0)
             # a jet pair must allow equal speeds: (1 + z_a)(1 + z_r) = Gamma^2 >= 1 (transverse Doppler);
             # pairs that cannot (e.g. a jet's H-beta taken for the other jet's H-alpha) come last
             zset = zc_all[sets]
             physical = np.ones(len(sets), bool) if not setup.jet_pair else (1 + zset.min(axis=1)) * (1 + zset.max(axis=1)) >= 1 - 3e-3
             if ok.any():
-                pool_ = ok & physical if (ok & physical).any() else ok
-                k = int(np.flatnonzero(pool_)[np.argmax(score_[pool_])])  # the first of equals, as before
-                best = (None, tuple(int(c) for c in sets[k]), stacked[k])
+                eligible = ok & physical if (ok & physical).any() else ok
+                k = int(np.flatnonzero(eligible)[np.argmax(merit[eligible])])  # the first of equals wins
+                best = (tuple(int(c) for c in sets[k]), stacked[k])
         if best is None:
             combo, sol = tuple(range(setup.components)), np.zeros(nc + setup.components * nl)
         else:
-            _, combo, sol = best
+            combo, sol = best
         comps = []
         for n, c in enumerate(combo):
             zc, fc = cands[c]
