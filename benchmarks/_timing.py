@@ -1,4 +1,4 @@
-"""Shared timing helper for the benchmark scripts (best of several runs, in seconds)."""
+"""Shared timing helpers for the benchmark scripts (in seconds): best of several runs, or their median and range."""
 
 from __future__ import annotations
 
@@ -12,3 +12,14 @@ def best_of(fn, repeat: int = 5) -> float:
         fn()
         best = min(best, time.perf_counter() - t0)
     return best
+
+
+def median_of(fn, repeat: int = 3) -> tuple[float, float, float]:
+    """(median, fastest, slowest) of ``repeat`` runs of ``fn``: the median for the figure, the range for its noise."""
+    times = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t0)
+    times.sort()
+    return times[len(times) // 2], times[0], times[-1]

@@ -7,19 +7,21 @@ temporary directory. Printed:
   per component (a typical notebook loop): spectra/s, and the ratio;
 * the same batch on ECSV files (bound by text parsing);
 * 2 Dask workers (a LocalCluster this script starts) against 1.
-Run:  .venv/bin/python benchmarks/bench_batch.py [N]
+Every timing is the median of REPEAT runs (default 3), with the range of the runs beside it: this
+machine's noise, so a figure is read with its spread.
+Run:  .venv/bin/python benchmarks/bench_batch.py [N] [REPEAT]
 """
 
 from __future__ import annotations
 
 import sys
 import tempfile
-import time
 import warnings
 from pathlib import Path
 
 import astropy.units as u
 import numpy as np
+from _timing import median_of  # the script's own directory is on sys.path
 
 import dopplerkit as dk
 from dopplerkit.batch import run_batch
@@ -59,13 +61,16 @@ def by_hand(files):
             y = np.where(sel, base, y)
 
 
-def rate(n, seconds):
-    return n / seconds
+def rates(n, timing):
+    """Spectra per second from (median, fastest, slowest) seconds: (median rate, its range as text)."""
+    med, fast, slow = timing
+    return n / med, f"(runs {n / slow:.0f}-{n / fast:.0f})"
 
 
 def main():
     warnings.simplefilter("ignore")
     n = int(sys.argv[1]) if len(sys.argv) > 1 else 400
+    repeat = int(sys.argv[2]) if len(sys.argv) > 2 else 3
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         (tmp / "fits").mkdir()
@@ -77,44 +82,47 @@ def main():
         files = sorted((tmp / "fits").glob("*.fits"))
         m = min(60, n)
         by_hand(files[:1])  # imports (specutils, lmfit) outside the timing: a notebook has them loaded already
-        t0 = time.perf_counter()
-        by_hand(files[:m])
-        hand = rate(m, time.perf_counter() - t0)
-        print(f"by-hand loop (specutils read, lmfit per component): {hand:7.1f} spectra/s (baseline)")
+        hand, spread = rates(m, median_of(lambda: by_hand(files[:m]), repeat))
+        print(f"median of {repeat} runs each; the range of the runs in brackets")
+        print(f"by-hand loop (specutils read, lmfit per component): {hand:7.1f} spectra/s {spread} (baseline)")
         for w in (1, 2):
-            t0 = time.perf_counter()
-            run_batch(tmp / "fits", cfg, tmp / f"out{w}.ecsv", workers=w, quiet=True)
-            r = rate(n, time.perf_counter() - t0)
+            r, spread = rates(
+                n, median_of(lambda w=w: run_batch(tmp / "fits", cfg, tmp / f"out{w}.ecsv", workers=w, quiet=True, overwrite=True), repeat)
+            )
             print(
-                f"dopplerkit batch, FITS, {w} worker(s)            : {r:7.1f} spectra/s  ratio {r / hand:5.1f}x (issue target >= 20x; >= 300/s on 2 workers)"
+                f"dopplerkit batch, FITS, {w} worker(s)            : {r:7.1f} spectra/s {spread} ratio {r / hand:5.1f}x "
+                "(issue target >= 20x; >= 300/s on 2 workers)"
             )
         # reading alone: the direct reader for plain binary tables against astropy.io.fits for the same files
         from astropy.io import fits
 
         from dopplerkit.io import _read_simple_bintable
 
-        t0 = time.perf_counter()
-        for f in files:
-            _read_simple_bintable(f)
-        fast = rate(n, time.perf_counter() - t0)
-        t0 = time.perf_counter()
-        for f in files:
-            with fits.open(f, memmap=False) as hdul:
-                data = hdul[1].data
-                _ = [np.asarray(data[c.name], float) for c in hdul[1].columns]
-        slow = rate(n, time.perf_counter() - t0)
+        def direct():
+            for f in files:
+                _read_simple_bintable(f)
+
+        def general():
+            for f in files:
+                with fits.open(f, memmap=False) as hdul:
+                    data = hdul[1].data
+                    _ = [np.asarray(data[c.name], float) for c in hdul[1].columns]
+
+        fast, _ = rates(n, median_of(direct, repeat))
+        slow, _ = rates(n, median_of(general, repeat))
         print(f"reading FITS tables: direct reader {fast:8.0f} files/s, astropy.io.fits {slow:8.0f} files/s, ratio {fast / slow:5.1f}x")
         ne = len(list((tmp / "ecsv").glob("*.ecsv")))
-        t0 = time.perf_counter()
-        run_batch(tmp / "ecsv", cfg, tmp / "oute.ecsv", workers=2, quiet=True)
-        print(f"dopplerkit batch, ECSV, 2 workers               : {rate(ne, time.perf_counter() - t0):7.1f} spectra/s (text parsing bound)")
+        r, spread = rates(
+            ne, median_of(lambda: run_batch(tmp / "ecsv", cfg, tmp / "oute.ecsv", workers=2, quiet=True, overwrite=True), repeat)
+        )
+        print(f"dopplerkit batch, ECSV, 2 workers               : {r:7.1f} spectra/s {spread} (text parsing bound)")
         try:
             import dask
             from distributed import LocalCluster
         except ImportError:
             print("dask not installed: skipping the Dask comparison")
             return
-        rates = {}
+        dask_rates = {}
         with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
             for w in (1, 2):
                 with LocalCluster(n_workers=w, threads_per_worker=1, processes=True, dashboard_address=None) as cl:
@@ -122,13 +130,23 @@ def main():
                     run_batch(
                         tmp / "fits", cfg, tmp / "warm.ecsv", scheduler=cl.scheduler_address, quiet=True, pattern="s000*.fits", chunk_size=1
                     )
-                    t0 = time.perf_counter()
-                    run_batch(
-                        tmp / "fits", cfg, tmp / f"dask{w}.ecsv", scheduler=cl.scheduler_address, quiet=True, chunk_size=max(n // 8, 10)
+                    dask_rates[w], spread = rates(
+                        n,
+                        median_of(
+                            lambda w=w, cl=cl: run_batch(
+                                tmp / "fits",
+                                cfg,
+                                tmp / f"dask{w}.ecsv",
+                                scheduler=cl.scheduler_address,
+                                quiet=True,
+                                overwrite=True,
+                                chunk_size=max(n // 8, 10),
+                            ),
+                            repeat,
+                        ),
                     )
-                    rates[w] = rate(n, time.perf_counter() - t0)
-                print(f"Dask LocalCluster, {w} worker(s)                 : {rates[w]:7.1f} spectra/s")
-        print(f"2 Dask workers / 1 worker                      : {rates[2] / rates[1]:5.2f}x (target >= 1.7x)")
+                print(f"Dask LocalCluster, {w} worker(s)                 : {dask_rates[w]:7.1f} spectra/s {spread}")
+        print(f"2 Dask workers / 1 worker                      : {dask_rates[2] / dask_rates[1]:5.2f}x (target >= 1.7x)")
 
 
 if __name__ == "__main__":
