@@ -86,9 +86,7 @@ def main():
         print(f"median of {repeat} runs each; the range of the runs in brackets")
         print(f"by-hand loop (specutils read, lmfit per component): {hand:7.1f} spectra/s {spread} (baseline)")
         for w in (1, 2):
-            r, spread = rates(
-                n, median_of(lambda w=w: run_batch(tmp / "fits", cfg, tmp / f"out{w}.ecsv", workers=w, quiet=True, overwrite=True), repeat)
-            )
+            r, spread = rates(n, median_of(lambda w=w: run_batch(tmp / "fits", cfg, tmp / f"out{w}.ecsv", workers=w, quiet=True), repeat))
             print(
                 f"dopplerkit batch, FITS, {w} worker(s)            : {r:7.1f} spectra/s {spread} ratio {r / hand:5.1f}x "
                 "(issue target >= 20x; >= 300/s on 2 workers)"
@@ -112,9 +110,7 @@ def main():
         slow, _ = rates(n, median_of(general, repeat))
         print(f"reading FITS tables: direct reader {fast:8.0f} files/s, astropy.io.fits {slow:8.0f} files/s, ratio {fast / slow:5.1f}x")
         ne = len(list((tmp / "ecsv").glob("*.ecsv")))
-        r, spread = rates(
-            ne, median_of(lambda: run_batch(tmp / "ecsv", cfg, tmp / "oute.ecsv", workers=2, quiet=True, overwrite=True), repeat)
-        )
+        r, spread = rates(ne, median_of(lambda: run_batch(tmp / "ecsv", cfg, tmp / "oute.ecsv", workers=2, quiet=True), repeat))
         print(f"dopplerkit batch, ECSV, 2 workers               : {r:7.1f} spectra/s {spread} (text parsing bound)")
         try:
             import dask
@@ -139,7 +135,6 @@ def main():
                                 tmp / f"dask{w}.ecsv",
                                 scheduler=cl.scheduler_address,
                                 quiet=True,
-                                overwrite=True,
                                 chunk_size=max(n // 8, 10),
                             ),
                             repeat,
