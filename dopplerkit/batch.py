@@ -1619,38 +1619,49 @@ def _worker_count(workers, n_chunks, out, quiet) -> int:
     return max(1, min(n, n_chunks))
 
 
+#: What a worker imports for its first spectrum (read, measure, host-line refinement and polish),
+#: imported before the workers start (:func:`_make_pool`).
+_WORKER_MODULES = (
+    "dopplerkit.batch",
+    "dopplerkit.measure",
+    "dopplerkit.io",
+    "dopplerkit.lines",
+    "astropy.io.fits",
+    "astropy.io.misc.yaml",  # ECSV headers
+    "astropy.table",
+    "astropy.coordinates",
+    "astropy.time",
+    "scipy.ndimage",
+    "scipy.special",
+    "scipy.optimize",
+    "threadpoolctl",
+)
+
+
 def _make_pool(n: int):
     """A process pool whose workers are already running.
 
     Forked from this process when it runs a single thread (nothing can hold a lock across the fork,
     and forking inherits every imported module at no cost); otherwise (threads running, a retry) a
-    fork server that has imported what the workers need.
+    fork server. Either way the modules a worker needs for its first spectrum are imported once,
+    before the workers start (:data:`_WORKER_MODULES`): imported in each worker they cost every
+    worker ~0.3-0.5 s of every run, and with fork this process keeps them for its next run.
     """
     import multiprocessing as mp
     import threading
     from concurrent.futures import ProcessPoolExecutor
 
     if "fork" in mp.get_all_start_methods() and threading.active_count() == 1:
+        import importlib
+
+        for name in _WORKER_MODULES:
+            importlib.import_module(name)  # here, once: every forked worker inherits them
         ctx = mp.get_context("fork")
     else:
         method = "forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn"
         ctx = mp.get_context(method)
         if method == "forkserver":
-            # everything a worker imports on its first spectrum, imported once in the server and inherited by every worker
-            ctx.set_forkserver_preload(
-                [
-                    "dopplerkit.batch",
-                    "dopplerkit.measure",
-                    "dopplerkit.io",
-                    "dopplerkit.lines",
-                    "astropy.io.fits",
-                    "astropy.table",
-                    "scipy.ndimage",
-                    "scipy.special",
-                    "scipy.optimize",
-                    "specutils.utils.wcs_utils",
-                ]
-            )
+            ctx.set_forkserver_preload(list(_WORKER_MODULES))  # imported once in the server, inherited by every worker
     ex = ProcessPoolExecutor(max_workers=n, mp_context=ctx)
     ex.submit(int).result()  # launches the workers now (with fork: all of them, before the pool's own thread starts)
     return ex

@@ -525,6 +525,29 @@ def test_workers_capped_at_the_cores(small, tmp_path, capsys):
     assert "--workers 200 capped at the" in capsys.readouterr().err
 
 
+def test_workers_start_with_everything_a_fit_imports(tmp_path):
+    # The pool imports _WORKER_MODULES before the workers start, so no worker pays for an import
+    # on its first spectrum: fitting the demo survey (good and bad files, in every format it has)
+    # after those imports must import nothing more (a module added to the fit path but not to the
+    # list would cost every worker of every run). Common practice, no source.
+    demo = Path(__file__).resolve().parents[1] / "data_demo" / "survey"
+    code = f"""
+import importlib, sys
+from pathlib import Path
+from dopplerkit.batch import _WORKER_MODULES, load_config, process_chunk
+for name in _WORKER_MODULES:
+    importlib.import_module(name)
+before = set(sys.modules)
+files = sorted(str(p) for p in Path({str(demo / "spectra")!r}).rglob("*") if p.is_file())
+files = files[:12] + [f for f in files if "/bad/" in f]
+rows = process_chunk(files, [None] * len(files), load_config({str(demo / "config.toml")!r}).as_dict())
+assert {{r["status"] for r in rows}} >= {{"ok", "error"}}, rows
+print(sorted(set(sys.modules) - before))
+"""
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=tmp_path)
+    assert out.stdout.strip() == "[]", out.stdout
+
+
 # ---------------------------------------------------------------------------
 # Faults: a dead worker, SIGTERM of the command (common practice, no source)
 # ---------------------------------------------------------------------------
