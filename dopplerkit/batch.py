@@ -754,7 +754,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     flux_col, flux_k = _flux_column_for(arr.flux_unit, arr.axis_unit)
     flags = set()
     notes: list = []
-    redchi, pvals, conts, hosts = [], [], [], []
+    redchi, pvals, conts, hosts, scales = [], [], [], [], []
     for _lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
         rows, info = fitter.measure(arr.axis, arr.flux, arr.sigma)
         if info.get("host"):
@@ -762,6 +762,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         redchi.append(info["redchi"])
         pvals.append(info["p_value"])
         conts.append(info["continuum"])
+        scales.append(info.get("error_scale", 1.0))
         for r in rows:
             pre = f"{slug(r['line'])}_{r['component']}"
             target = canon.get(slug(r["line"]), arr.axis_unit)
@@ -821,6 +822,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     row["chi2_reduced"] = float(max(redchi)) if redchi else math.nan
     row["p_value"] = float(min(pvals)) if pvals else math.nan
     row["continuum"] = "; ".join(conts)
+    row["error_scale"] = float(max(scales)) if scales else math.nan
     row["host"] = "; ".join(hosts)
     row["flags"] = ",".join(sorted(flags))
     row["status"] = "suspect" if flags else "ok"
@@ -1156,6 +1158,7 @@ _TAIL_COLUMNS = [
     "viewing_angle_err",
     "chi2_reduced",
     "p_value",
+    "error_scale",
     "continuum",
     "host",
     "constraints",
@@ -1218,7 +1221,7 @@ def _fill_table(source, n: int, keys=None, units=None):
     t.meta["comment"] = [
         "dopplerkit batch results; viewing angles in degrees (0 = moving straight at us); z < 0 is a blueshift; "
         "line centres in each line's catalogue unit (wavelengths in the medium of the medium column), "
-        "FWHM in km/s, integrated line fluxes in erg/(s cm2) (photon spectra: ph/(s cm2))"
+        "FWHM in km/s as observed (instrumental broadening not removed), integrated line fluxes in erg/(s cm2) (photon spectra: ph/(s cm2))"
     ]
     return t
 

@@ -1055,18 +1055,23 @@ class LineFitter:
             "npix": int(xw.size),
         }
         rows = self._rows(p, err, at, _median(np.abs(np.diff(x))))
-        info["delta_chi2"] = self._detection(rows, p, xw, yw, sw, B, chi2, lo, hi, x)
+        f, rho1 = _error_scale(xw, (yw - self._model(p, xw, B)[0]) / sw)
+        _apply_error_scale(rows, f, rho1, info)
+        info["delta_chi2"] = self._detection(rows, p, xw, yw, sw, B, chi2, lo, hi, x, f * f)
         if host is not None:
             nh = len(host.names)
-            info["host"] = _host_note(host, p[-nh:] / err[-nh:])
+            info["host"] = _host_note(host, p[-nh:] / (f * err[-nh:]))
         info["also_fitted"] = extra
-        _check_identification(s, rows, x, y, sigma, host=host, also=extra)
+        _check_identification(s, rows, x, y, sigma * f, host=host, also=extra)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
 
-    def _detection(self, rows, p, xw, yw, sw, B, chi2, lo, hi, x):
-        """Refit without the weakest component of each group; flag it ``not_detected`` unless the data need it."""
+    def _detection(self, rows, p, xw, yw, sw, B, chi2, lo, hi, x, scale2=1.0):
+        """Refit without the weakest component of each group; flag it ``not_detected`` unless the data need it.
+
+        ``scale2``: the square of the error scale (:func:`_error_scale`); correlated noise raises
+        chi-square drops by about that much, so the threshold rises with it."""
         s = self.setup
         out = []
         first = 0
@@ -1081,7 +1086,7 @@ class LineFitter:
             chi2_less = self._solve(xw, yw, sw, B, p2, lo2, hi2)[2]
             dchi2 = chi2_less - chi2
             out.append(float(dchi2))
-            need = _detection_threshold(s, x, gi, p[j + 1], per, xw.size)
+            need = scale2 * _detection_threshold(s, x, gi, p[j + 1], per, xw.size)
             _flag_undetected(rows, gi, kmin, dchi2, need)
             first += s.components * per
         return out
@@ -1169,6 +1174,63 @@ def _segments(x) -> np.ndarray:
         return np.zeros(x.size, int)
     d = np.diff(x)
     return np.concatenate([[0], np.cumsum(np.abs(d) > 3 * _median(np.abs(d)))])
+
+
+#: Correlated-noise test: the lag-1 correlation of the normalised residuals must exceed this many
+#: standard errors (1/sqrt(N)) before errors are scaled; further lags count while above 2 of them.
+NOISE_CORRELATION_SIGMA = 3.0
+_MAX_LAG = 8
+
+
+def _error_scale(xw, resid) -> tuple[float, float]:
+    """Factor for the line errors when neighbouring pixels share noise; and the lag-1 correlation.
+
+    A spectrum resampled by its pipeline (onto a common or logarithmic grid, orders merged) shares
+    each pixel's noise with its neighbours, while the errors it carries are usually propagated
+    pixel by pixel (the covariance dropped). Chi-square per pixel stays right, so the fit looks
+    good, but the error of anything that sums many pixels (a line's centre, width and flux) is too
+    small by sqrt(1 + 2 sum_k rho_k), rho_k the noise correlation at lag k (the variance of a sum
+    of correlated variables, for weights that vary slowly over the correlation length; common
+    practice, no source). rho_k is measured on the normalised residuals ``resid`` within
+    contiguous runs of window pixels; lag 1 must exceed NOISE_CORRELATION_SIGMA / sqrt(N), and
+    further lags (up to 8 pixels) count while each exceeds 2 / sqrt(N). The factor is never below 1.
+    """
+    r = np.asarray(resid, float)
+    n = r.size
+    if n < 30:
+        return 1.0, float("nan")
+    seg = _segments(xw)
+    var = float(r @ r)
+    if not (np.isfinite(var) and var > 0):
+        return 1.0, float("nan")
+    total, rho1 = 0.0, float("nan")
+    for k in range(1, _MAX_LAG + 1):
+        same = seg[k:] == seg[:-k]
+        rho = float(r[k:][same] @ r[:-k][same]) / var
+        if k == 1:
+            rho1 = rho
+        if rho <= (NOISE_CORRELATION_SIGMA if k == 1 else 2.0) / math.sqrt(n):
+            break
+        total += rho
+    return max(1.0, math.sqrt(max(1.0 + 2.0 * total, 0.0))), rho1
+
+
+def _apply_error_scale(rows, f, rho1, info):
+    """Widen the rows' errors by ``f`` (from :func:`_error_scale`); ``info`` keeps the factor and the note :func:`_assess` adds."""
+    info["error_scale"] = f
+    if f <= 1.0:
+        return
+    for r in rows:
+        for key in ("z_err", "centre_err", "fwhm_err", "flux_err"):
+            r[key] = r[key] * f
+        r["snr"] = r["snr"] / f
+    if info.get("p_value", 1.0) >= P_VALUE_MIN:
+        why = "as in a resampled spectrum whose errors were propagated pixel by pixel"
+    else:
+        why = "the model misses structure, or the noise is correlated"
+    info["error_scale_note"] = (
+        f"residuals of neighbouring pixels are correlated (lag-1 correlation {rho1:.2f}), {why}: line errors scaled up by {f:.2f}"
+    )
 
 
 def _continuum_candidates(setup, xw, cw):
@@ -1490,6 +1552,8 @@ def _assess(setup, rows, info):
                     rows[0]["notes"].append(
                         f"{setup.labels[ks[a]]} and {setup.labels[ks[b]]} are {sep:.0f} km/s apart, under 0.85 FWHM: a blend"
                     )
+    if info.get("error_scale_note"):
+        rows[0]["notes"].append(info["error_scale_note"])
     for r in rows:
         r["status"] = "suspect" if r["flags"] else "ok"
 
@@ -1927,6 +1991,8 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         "npix": int(xw.size),
     }
     rows = _lmfit_rows(setup, result, float(np.median(np.abs(np.diff(x)))))
+    f, rho1 = _error_scale(xw, (yw - result.best_fit) / sw)
+    _apply_error_scale(rows, f, rho1, info)
     # the detection test of the weakest component of each line (the only one, for one component)
     info["delta_chi2"] = []
     p = result.params
@@ -1942,14 +2008,14 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         less = _lmfit_fit(setup, xw, yw, sw, fitted, cw, choice, k_pl, hold=(gi, kmin), host=host, extra=N)
         dchi2 = float(less.chisqr) - info["chi2"]
         info["delta_chi2"].append(dchi2)
-        need = _detection_threshold(setup, x, gi, result.params[f"fwhm_g{gi}_{kmin}"].value, 2 + len(grp), xw.size)
+        need = f * f * _detection_threshold(setup, x, gi, result.params[f"fwhm_g{gi}_{kmin}"].value, 2 + len(grp), xw.size)
         _flag_undetected(rows, gi, kmin, dchi2, need)
     if host is not None:
         nb, nh = sum(result.params[f"cont_c{i}"].vary for i in range(_MAX_CONT)), len(host.names)
         pars = [result.params[f"cont_c{i}"] for i in range(nb - nh, nb)]
-        info["host"] = _host_note(host, [q.value / q.stderr if q.stderr else np.nan for q in pars])
+        info["host"] = _host_note(host, [q.value / (f * q.stderr) if q.stderr else np.nan for q in pars])
     info["also_fitted"] = also
-    _check_identification(setup, rows, x, y, sig, host=host, also=also)
+    _check_identification(setup, rows, x, y, sig * f, host=host, also=also)
     _check_edges(rows, x)
     _assess(setup, rows, info)
     return rows, info, result
@@ -2066,6 +2132,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
             "dof": info["dof"],
             "p_value": info["p_value"],
             "continuum": info["continuum"],
+            "error_scale": info.get("error_scale", 1.0),
             "profile": setup.profile,
             "kind": setup.kind,
             "host": info.get("host", ""),
@@ -2191,7 +2258,8 @@ def measure_lines(
     LineTable (an astropy.table.QTable)
         ``table.plot()`` draws it over the spectrum (data, fitted lines, residuals). Columns ``line``, ``component``, ``rest``, ``centre``, ``centre_err`` (axis unit),
         ``z``, ``z_err``, ``v_radial``, ``v_radial_err`` (km/s, relativistic radial speed,
-        positive receding), ``fwhm``, ``fwhm_err`` (km/s), ``flux``, ``flux_err`` (flux unit x
+        positive receding), ``fwhm``, ``fwhm_err`` (km/s, as observed: instrumental broadening is
+        not removed), ``flux``, ``flux_err`` (flux unit x
         axis unit; negative for absorption), ``snr``, ``chi2_reduced``, ``p_value`` (chi-square
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is
         flagged, else "suspect"), ``flags`` (comma-separated, see :data:`FLAGS`: "at_bound",
@@ -2210,7 +2278,11 @@ def measure_lines(
     * components closer than 0.85 FWHM are a ``blend``;
     * a fit whose chi-square probability is below :data:`P_VALUE_MIN` is ``poor_fit``;
     * an emission line whose stronger companions of the same gas (case-B Balmer decrement,
-      the [O III] doublet ratio) are missing where the fitted z puts them is ``id_contradicted``.
+      the [O III] doublet ratio) are missing where the fitted z puts them is ``id_contradicted``;
+    * where the residuals of neighbouring pixels are correlated (a resampled spectrum whose errors
+      were propagated pixel by pixel), the errors of centre, z, width and flux are scaled up by
+      the factor such noise implies (``meta["error_scale"]``, the message says so) and the
+      detection threshold with them.
     """
     from .spectra import spectral_medium
 

@@ -121,9 +121,11 @@ def test_batch_end_to_end(survey, tmp_path):
         "h_alpha_approaching_z_err",
         "beta_err",
         "viewing_angle_err",
+        "error_scale",
         "config_hash",
         "dopplerkit_version",
     } <= set(t.colnames)
+    assert np.all(ok["error_scale"] == 1.0)  # white noise: no errors scaled
     # nothing left beside the output: the journal is removed, temporary files renamed
     assert sorted(p.name for p in tmp_path.iterdir()) == ["res.ecsv"]
 
