@@ -19,9 +19,13 @@ from pathlib import Path
 import astropy.units as u
 import numpy as np
 
-KINDS = ("weak", "blend", "steep", "host", "lowsnr", "scaled", "wrongline", "plain")
-# the mix: every hard kind the validation names, beside ordinary spectra (a fifth), as in a survey
-WEIGHTS = (0.12, 0.10, 0.15, 0.14, 0.14, 0.10, 0.05, 0.20)
+KINDS = ("weak", "blend", "steep", "host", "lowsnr", "scaled", "wrongline", "plain", "resampled")
+# the mix: every hard kind the validation names, beside ordinary spectra (a fifth), as in a survey;
+# "resampled": noise shared by neighbouring pixels (kernel 1/4, 1/2, 1/4) under errors propagated
+# pixel by pixel, as a pipeline that resamples onto a common grid leaves it
+WEIGHTS = (0.12, 0.10, 0.15, 0.14, 0.14, 0.10, 0.05, 0.20, 0.10)
+#: the resampling kernel of the "resampled" kind
+KERNEL = np.array([0.25, 0.5, 0.25])
 
 
 def _case(kind, rng):
@@ -77,7 +81,16 @@ def _spectrum(c, rng):
             LineComponent(6585.27 * u.AA, z=0.0, fwhm=150 * kms, strength=1.2),  # [N II] 6585 (vacuum)
             LineComponent(6549.86 * u.AA, z=0.0, fwhm=150 * kms, strength=0.4),  # [N II] 6550 (vacuum)
         ]
-    return synthesize_spectrum(grid, comps, continuum=c["cont"], snr=c["snr"], seed=rng, resolution=4000)
+    spec = synthesize_spectrum(grid, comps, continuum=c["cont"], snr=c["snr"], seed=rng, resolution=4000)
+    if c["kind"] == "resampled":
+        from astropy.nddata import StdDevUncertainty
+        from specutils import Spectrum
+
+        clean = synthesize_spectrum(grid, comps, continuum=c["cont"], resolution=4000).flux.value
+        noise = np.convolve(spec.flux.value - clean, KERNEL, mode="same")
+        sigma = spec.uncertainty.array * np.sqrt(np.sum(KERNEL**2))
+        spec = Spectrum(spectral_axis=grid, flux=(clean + noise) * spec.flux.unit, uncertainty=StdDevUncertainty(sigma), meta=spec.meta)
+    return spec
 
 
 def _write(spec, path, scaled):
