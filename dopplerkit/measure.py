@@ -61,6 +61,7 @@ FLAGS = {
     "unresolved": "narrower than two pixels: its width and centre error are not trustworthy",
     "faint": "detected, but its chi-square drop is under twice the detection threshold: its curvature errors are too small there",
     "edge": "within one FWHM of an end of the spectrum (or of a gap): the line and the continuum cannot be told apart",
+    "id_ambiguous": "tied lines read the other way round (line j where line i is, another z) fit about as well: z is not decided",
 }
 #: Goodness-of-fit threshold: a fit whose chi-square probability is below this is ``poor_fit``.
 P_VALUE_MIN = 1e-3
@@ -869,7 +870,7 @@ class LineFitter:
 
         NaN pixels are dropped; flux and flux_err in the rows are in the units of ``y``.
         """
-        x, y, sigma, fscale = _prepare(x, y, sigma)
+        x, y, sigma, fscale, note = _prepare(x, y, sigma)
         unit = getattr(self, "unit", None)
         if self.setup.axis_medium == "air":
             if unit is None:
@@ -877,6 +878,7 @@ class LineFitter:
             x = _to_fit_axis(self.setup, x, unit)
         starts, cont, host = _begin(self.setup, x, y, sigma, self.window, self.window_kms)
         rows, info = self.fit_arrays(x, y, sigma, starts=starts, cont=cont, host=host)
+        _note_errors(rows, info, note)
         _rows_to_axis(self.setup, rows, unit)
         for r in rows:
             r["flux"] *= fscale
@@ -967,7 +969,7 @@ class LineFitter:
             pass
         return p, err, float(fun @ fun), at
 
-    def fit_arrays(self, x, y, sigma, starts=None, cont=None, host=None):
+    def fit_arrays(self, x, y, sigma, starts=None, cont=None, host=None, keep=None, assess=True):
         """Fit plain arrays (x in the set-up's axis unit, sorted). Returns (rows, info).
 
         ``info`` has ``chi2``, ``dof``, ``redchi``, ``p_value`` (the chi-square probability),
@@ -975,7 +977,8 @@ class LineFitter:
         the weakest component of each group is removed (the detection test). Rows carry their ``flags``,
         ``notes`` and ``status`` (see :data:`FLAGS`). ``host`` (from the start, found when
         ``starts`` is None) are narrow host lines fitted beside the moving ones; ``info["host"]``
-        says what was fitted.
+        says what was fitted. ``keep`` (a pixel mask) replaces the windows around ``starts``;
+        with ``assess=False`` only the fit is made and (None, info) returned.
         """
         s = self.setup
         if starts is None:
@@ -983,7 +986,8 @@ class LineFitter:
             order = np.argsort(x)
             x, y, sigma = x[order], y[order], sigma[order]
             starts, cont, host = _begin(s, x, y, sigma, self.window, self.window_kms)
-        keep = self.window_mask(x, starts)
+        if keep is None:
+            keep = self.window_mask(x, starts)
         xw, yw, sw = x[keep], y[keep], sigma[keep]
         cw = cont[keep] if cont is not None else _median_continuum(xw, yw)
         host = _host_in_window(s, host, xw)
@@ -1054,6 +1058,9 @@ class LineFitter:
             "continuum": _continuum_name(choice),
             "npix": int(xw.size),
         }
+        if not assess:
+            info["z"] = self._unpack(p)[0]  # per group and component
+            return None, info
         rows = self._rows(p, err, at, _median(np.abs(np.diff(x))))
         f, rho1 = _error_scale(xw, (yw - self._model(p, xw, B)[0]) / sw)
         _apply_error_scale(rows, f, rho1, info)
@@ -1063,6 +1070,7 @@ class LineFitter:
             info["host"] = _host_note(host, p[-nh:] / (f * err[-nh:]))
         info["also_fitted"] = extra
         _check_identification(s, rows, x, y, sigma * f, host=host, also=extra)
+        _check_swaps(s, rows, x, y, sigma, cont, host, self.window, self.window_kms)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
@@ -1527,6 +1535,82 @@ def _check_alternatives(setup, rows, x, y, sig, others):
             )
 
 
+#: Tied lines: the fitted reading must be this many times more likely than the same features read
+#: as another line of the group (a likelihood ratio; the two readings have the same parameters).
+#: 100:1 is "decisive" on Jeffreys' scale (Jeffreys 1961, Theory of Probability, 3rd ed., app. B,
+#: from memory).
+ID_ODDS_MIN = 100.0
+
+
+def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms):
+    """Flag ``id_ambiguous`` where tied lines read the other way round fit about as well.
+
+    Lines tied to one z (Fe XXVI Ly-alpha and Fe XXV He-alpha of one outflow, H-alpha and He I of
+    one jet) can be fitted with line j where line i is: a z off by the ratio of their rest values.
+    At low S/N the two readings can fit almost equally well, and the error of z covers only the
+    one found. For each tied component and each such swap inside the z range, both readings are
+    fitted (fast engine) on the union of their windows; unless the fitted one's chi-square is
+    lower by more than 2 ln ID_ODDS_MIN, the component is ``id_ambiguous``.
+    """
+    if not any(len(g) > 1 for g in setup.groups) or not rows:
+        return
+    if not all(np.isfinite([r["z"], r["z_err"], r["fwhm"], r["flux"]]).all() for r in rows):
+        return
+    fitted = [[None] * setup.components for _ in setup.groups]
+    for r in rows:
+        grp = list(setup.groups[r["group"]])
+        if fitted[r["group"]][r["k"]] is None:
+            fitted[r["group"]][r["k"]] = (r["z"], r["fwhm"], [0.0] * len(grp))
+        fitted[r["group"]][r["k"]][2][grp.index(r["lidx"])] = abs(r["flux"])
+    if any(c is None for g in fitted for c in g):
+        return
+    fitter = LineFitter(setup, window, window_kms)
+    base = fitter.window_mask(x, fitted)
+    zlo, zhi = setup.z_range
+    need = 2.0 * math.log(ID_ODDS_MIN)
+    for gi, grp in enumerate(setup.groups):
+        grp = list(grp)
+        if len(grp) < 2:
+            continue
+        for k in range(setup.components):
+            z, w, areas = fitted[gi][k]
+            for i, li in enumerate(grp):
+                for j, lj in enumerate(grp):
+                    ratio = setup.rest[li] / setup.rest[lj]
+                    if i == j or abs(ratio - 1) < 1e-6:
+                        continue
+                    z2 = (1 + z) * (ratio if setup.wavelike else 1 / ratio) - 1  # line j where line i was
+                    if not zlo <= z2 <= zhi:
+                        continue
+                    a2 = list(areas)
+                    a2[i], a2[j] = areas[j], areas[i]
+                    alt = [list(g) for g in fitted]
+                    alt[gi][k] = (z2, w, a2)
+                    keep = base | fitter.window_mask(x, alt)
+                    try:
+                        c0 = fitter.fit_arrays(x, y, sig, starts=fitted, cont=cont, host=host, keep=keep, assess=False)[1]["chi2"]
+                        other = fitter.fit_arrays(x, y, sig, starts=alt, cont=cont, host=host, keep=keep, assess=False)[1]
+                    except (np.linalg.LinAlgError, ValueError):
+                        continue
+                    d = other["chi2"] - c0
+                    z_end = float(other["z"][gi][k])
+                    if abs(z_end - z2) >= abs(z_end - z):
+                        continue  # the other reading slid back to the fitted one: it is no rival
+                    if not (np.isfinite(d) and d < need):
+                        continue
+                    mine = [r for r in rows if r["group"] == gi and r["k"] == k]
+                    for r in mine:
+                        if "id_ambiguous" not in r["flags"]:
+                            r["flags"].append("id_ambiguous")
+                    how = "better" if d < 0 else "almost as well"
+                    mine[0]["notes"].append(
+                        f"{setup.labels[k]} component: {setup.names[lj]} at z = {z2:.5f}, where {setup.names[li]} is at z = {z:.5f}, "
+                        f"fits {how} (chi-square {d:+.1f}; odds {math.exp(min(-0.5 * d, 700.0)):.3g}:1, under {ID_ODDS_MIN:g}:1): "
+                        "which line is which is not decided"
+                    )
+                    break  # one note per line of the component
+
+
 def _assess(setup, rows, info):
     """Flags shared by both engines (goodness of fit, blends); then each row's status."""
     if not (info.get("p_value", 1.0) >= P_VALUE_MIN):
@@ -1556,6 +1640,13 @@ def _assess(setup, rows, info):
         rows[0]["notes"].append(info["error_scale_note"])
     for r in rows:
         r["status"] = "suspect" if r["flags"] else "ok"
+
+
+def _note_errors(rows, info, note):
+    """Record in ``info["errors"]`` and the first row's notes how the errors were taken (see :func:`_prepare`)."""
+    info["errors"] = note or "as given"
+    if note and rows:
+        rows[0]["notes"].append(note)
 
 
 def _check_edges(rows, x):
@@ -1818,9 +1909,11 @@ FIT_PIXEL_KMS = 1.0
 
 
 def _prepare(x, y, sigma, mask=None):
-    """Clean, sort ascending, average needlessly fine pixels, scale: (x, y, sigma, flux scale).
+    """Clean, sort ascending, decouple counts errors, average needlessly fine pixels, scale.
 
-    The inputs are never modified; copies are made only where something changes.
+    Returns (x, y, sigma, flux scale, note): ``note`` is None, or says that errors which followed
+    each pixel's own counts were replaced (:func:`_expected_errors`). The inputs are never
+    modified; copies are made only where something changes.
     """
     x, y, sigma = _clean(x, y, sigma, mask)
     d = np.diff(x)
@@ -1831,6 +1924,7 @@ def _prepare(x, y, sigma, mask=None):
             order = np.argsort(x, kind="stable")
             x, y, sigma = x[order], y[order], sigma[order]
     del d
+    sigma, note = _expected_errors(y, sigma)
     if x.size > 1000:
         stride = max(1, x.size // 1000)
         sub = x[::stride]
@@ -1840,7 +1934,52 @@ def _prepare(x, y, sigma, mask=None):
             x, y, sigma = _binned(x, y, sigma, factor)
     # work in units of the typical flux so lmfit's numerical derivatives are well scaled
     fscale = float(np.median(np.abs(y))) or float(np.median(sigma)) or 1.0
-    return x, y / fscale, sigma / fscale, fscale
+    return x, y / fscale, sigma / fscale, fscale, note
+
+
+#: Errors are taken to follow each pixel's own counts when the pixel-to-pixel wiggles of sigma^2
+#: and of the flux correlate above this; they are replaced only below COUNTS_DECOUPLE_MAX counts
+#: per pixel (median), where the bias they cause matters.
+COUNTS_CORRELATION_MIN = 0.8
+COUNTS_DECOUPLE_MAX = 1000.0
+
+
+def _expected_errors(y, sigma):
+    """Errors that follow each pixel's own counts, replaced by their expectation: (sigma, note or None).
+
+    Errors computed from the observed counts (sqrt(N), or sqrt(N + background), as X-ray and
+    many CCD pipelines give them) are small where the counts fluctuate low and large where they
+    fluctuate high, so a chi-square fit with them is biased towards low values, and at tens of
+    counts per pixel line centres come out several sigma off with errors too small (Neyman's
+    chi-square; Mighell 1999, ApJ 518, 380, from memory). Detected when the high-passed sigma^2
+    and flux correlate (coefficient > COUNTS_CORRELATION_MIN); their slope c (flux per count) turns
+    the flux into counts N = y / c. Below COUNTS_DECOUPLE_MAX counts per pixel each pixel's
+    variance sigma^2 - c (y - s) is used, with s the mean flux of its six nearest neighbours
+    (the pixel itself left out): the part that followed the pixel's own noise is replaced by its
+    local expectation, and whatever else the variance holds (background, sky, read noise) stays.
+    """
+    n = y.size
+    if n < 50:
+        return sigma, None
+    v = sigma * sigma
+    hv = v[1:-1] - 0.5 * (v[:-2] + v[2:])
+    hy = y[1:-1] - 0.5 * (y[:-2] + y[2:])
+    svy, svv, syy = float(hv @ hy), float(hv @ hv), float(hy @ hy)
+    if not (svy > 0 and svv > 0 and syy > 0) or svy / math.sqrt(svv * syy) < COUNTS_CORRELATION_MIN:
+        return sigma, None
+    c = svy / syy  # variance per unit flux: the flux of one count
+    counts = _median(y) / c
+    if not (np.isfinite(counts) and counts < COUNTS_DECOUPLE_MAX):
+        return sigma, None
+    pad = np.concatenate([np.full(3, np.nan), y, np.full(3, np.nan)])
+    near = np.stack([pad[3 + d : 3 + d + n] for d in (-3, -2, -1, 1, 2, 3)])
+    s_near = np.nanmean(near, axis=0)
+    v_new = np.maximum(v - c * (y - s_near), 0.5 * c * c)  # at least half a count's variance
+    note = (
+        f"errors follow each pixel's own counts (median {counts:.0f} counts per pixel): replaced by their expectation "
+        "from the neighbouring pixels, as errors taken from the data bias a fit at low counts"
+    )
+    return np.sqrt(v_new), note
 
 
 def _clean(x, y, sigma, mask=None):
@@ -2016,6 +2155,7 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         info["host"] = _host_note(host, [q.value / (f * q.stderr) if q.stderr else np.nan for q in pars])
     info["also_fitted"] = also
     _check_identification(setup, rows, x, y, sig * f, host=host, also=also)
+    _check_swaps(setup, rows, x, y, sig, cont0, host, window, window_kms)
     _check_edges(rows, x)
     _assess(setup, rows, info)
     return rows, info, result
@@ -2133,6 +2273,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
             "p_value": info["p_value"],
             "continuum": info["continuum"],
             "error_scale": info.get("error_scale", 1.0),
+            "errors": info.get("errors", "as given"),
             "profile": setup.profile,
             "kind": setup.kind,
             "host": info.get("host", ""),
@@ -2160,7 +2301,7 @@ def _warn_flags(t):
             UnresolvedLineWarning,
             stacklevel=3,
         )
-    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "edge"}:
+    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous", "edge"}:
         msgs = [m for m in t["message"] if m]
         warnings.warn(
             f"component(s) suspect: {'; '.join(msgs)}",
@@ -2263,8 +2404,8 @@ def measure_lines(
         axis unit; negative for absorption), ``snr``, ``chi2_reduced``, ``p_value`` (chi-square
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is
         flagged, else "suspect"), ``flags`` (comma-separated, see :data:`FLAGS`: "at_bound",
-        "no_errors", "poor_fit", "not_detected", "faint", "blend", "id_contradicted", "unresolved", "edge") and
-        ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
+        "no_errors", "poor_fit", "not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous",
+        "unresolved", "edge") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
 
     Notes
     -----
@@ -2279,6 +2420,8 @@ def measure_lines(
     * a fit whose chi-square probability is below :data:`P_VALUE_MIN` is ``poor_fit``;
     * an emission line whose stronger companions of the same gas (case-B Balmer decrement,
       the [O III] doublet ratio) are missing where the fitted z puts them is ``id_contradicted``;
+    * tied lines that fit about as well read the other way round (line j where line i is, at
+      another z; likelihood ratio under :data:`ID_ODDS_MIN`) are ``id_ambiguous``;
     * where the residuals of neighbouring pixels are correlated (a resampled spectrum whose errors
       were propagated pixel by pixel), the errors of centre, z, width and flux are scaled up by
       the factor such noise implies (``meta["error_scale"]``, the message says so) and the
@@ -2295,7 +2438,7 @@ def measure_lines(
             "the medium of the wavelength axis is unknown (no meta['medium'], no FITS CTYPE AWAV/WAVE): pass medium='air' or 'vacuum' so air and vacuum rest wavelengths are not mixed"
         )
     setup = _make_setup(lines, unit, med, components, tie, kind, profile, continuum, continuum_degree, z_range, host, host_z)
-    x, y, sig, fscale = _prepare(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), spectrum.mask)
+    x, y, sig, fscale, note = _prepare(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), spectrum.mask)
     x = _to_fit_axis(setup, x, unit)
     starts, cont0, found = _begin(setup, x, y, sig, window, window_kms)
     if method == "fast":
@@ -2303,6 +2446,7 @@ def measure_lines(
         extra = info
     else:
         rows, info, extra = _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=found)
+    _note_errors(rows, info, note)
     _rows_to_axis(setup, rows, unit)
     info["medium"] = med
     for r in rows:
