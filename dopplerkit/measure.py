@@ -1325,7 +1325,7 @@ def _choose_continuum(setup, x, y, sig, bases, comps):
         bic = chi2 + B.shape[1] * np.log(x.size)  # Schwarz 1978, Ann. Stat. 6, 461
         if bic < best_bic:
             best, best_bic = opt, bic
-    return best
+    return opts[0][0] if best is None else best  # no finite chi-square: the first (the fit will say why)
 
 
 def _median(a) -> float:
@@ -1955,8 +1955,9 @@ def _expected_errors(y, sigma):
     and flux correlate (coefficient > COUNTS_CORRELATION_MIN); their slope c (flux per count) turns
     the flux into counts N = y / c. Below COUNTS_DECOUPLE_MAX counts per pixel each pixel's
     variance sigma^2 - c (y - s) is used, with s the mean flux of its six nearest neighbours
-    (the pixel itself left out): the part that followed the pixel's own noise is replaced by its
-    local expectation, and whatever else the variance holds (background, sky, read noise) stays.
+    (the pixel itself left out; y - s clipped at 3 sigma, so the peak of a narrow line is not
+    taken for noise): the part that followed the pixel's own noise is replaced by its local
+    expectation, and whatever else the variance holds (background, sky, read noise) stays.
     """
     n = y.size
     if n < 50:
@@ -1974,7 +1975,10 @@ def _expected_errors(y, sigma):
     pad = np.concatenate([np.full(3, np.nan), y, np.full(3, np.nan)])
     near = np.stack([pad[3 + d : 3 + d + n] for d in (-3, -2, -1, 1, 2, 3)])
     s_near = np.nanmean(near, axis=0)
-    v_new = np.maximum(v - c * (y - s_near), 0.5 * c * c)  # at least half a count's variance
+    # the pixel's own fluctuation, not structure: a narrow line's peak stands far above its
+    # neighbours' mean, and at most 3 sigma of that is taken for noise
+    own = np.clip(y - s_near, -3.0 * sigma, 3.0 * sigma)
+    v_new = np.maximum(v - c * own, 0.5 * c * c)  # at least half a count's variance
     note = (
         f"errors follow each pixel's own counts (median {counts:.0f} counts per pixel): replaced by their expectation "
         "from the neighbouring pixels, as errors taken from the data bias a fit at low counts"
