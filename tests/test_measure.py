@@ -625,3 +625,17 @@ def test_one_feature_of_two_tied_lines_is_ambiguous():
     assert set(t["status"]) == {"suspect"}
     assert "id_ambiguous" in t["flags"][0]
     assert "which line is which is not decided" in t["message"][0]
+
+
+def test_expected_errors_keep_the_variance_of_a_narrow_line_peak():
+    # A line one pixel wide stands far above its neighbours: that is structure, not the pixel's
+    # noise; its variance (Poisson: the expected counts) must stay near the counts there.
+    from dopplerkit.measure import _expected_errors
+
+    rng = np.random.default_rng(12)
+    x = np.arange(2000.0)
+    model = 50.0 + 5000.0 * np.exp(-0.5 * ((x - 1000.0) / 1.0) ** 2)
+    n = rng.poisson(model).astype(float)
+    new, note = _expected_errors(n, np.sqrt(np.maximum(n, 1.0)))
+    assert note is not None
+    assert new[1000] ** 2 > 0.9 * model[1000]
