@@ -1573,6 +1573,8 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms):
         if len(grp) < 2:
             continue
         for k in range(setup.components):
+            if any("not_detected" in r["flags"] for r in rows if r["group"] == gi and r["k"] == k):
+                continue  # an absent component has no reading to decide
             z, w, areas = fitted[gi][k]
             for i, li in enumerate(grp):
                 for j, lj in enumerate(grp):
