@@ -2398,7 +2398,9 @@ def measure_lines(
     host_z : float
         Redshift of the host (0 for a Galactic source).
     return_result : bool
-        Also return the lmfit ModelResult (method "lmfit") or the fit info dict.
+        Also return the lmfit ModelResult (method "lmfit") or the fit info dict. The
+        ModelResult's own errors are lmfit's: they are not scaled by ``meta["error_scale"]``
+        and the table's are.
 
     Returns
     -------
