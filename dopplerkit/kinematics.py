@@ -639,7 +639,7 @@ def solve_jet_pair(z_approaching, z_receding, *, on_unphysical: Literal["raise",
             where = "" if za.ndim == 0 else f" at index {np.unravel_index(i, za.shape)}"
             raise ValueError(
                 "unphysical jet pair: equal-speed opposite jets need (1 + z_approaching)(1 + z_receding) >= 1, "
-                f"got z_approaching={za.ravel()[i]!r}, z_receding={zr.ravel()[i]!r}, product {prod.ravel()[i]!r}{where}"
+                f"got z_approaching={float(za.ravel()[i])!r}, z_receding={float(zr.ravel()[i])!r}, product {float(prod.ravel()[i]):.6g}{where}"
             )
         s = 2.0 + za + zr
         g = 0.5 * s
