@@ -1174,6 +1174,15 @@ def _flag_undetected(rows, gi, k, dchi2, need):
                     f"{r['line']} {r['component']}: not detected (removing it raises chi-square by {dchi2:.1f}; "
                     f"a real line would raise it by > {need:.1f} after the look-elsewhere effect)"
                 )
+    if flag == "not_detected":
+        # components are labelled by increasing z: with one of them absent, the others' labels
+        # (approaching/receding) are not decided by the data, though their values may be right
+        for r in rows:
+            if r["group"] == gi and r["k"] != k:
+                r["notes"].append(
+                    f"{r['line']} {r['component']}: labelled by increasing z beside a component that is not detected; "
+                    "which jet it belongs to is not decided by the data"
+                )
 
 
 def _segments(x) -> np.ndarray:

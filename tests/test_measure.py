@@ -177,6 +177,19 @@ def test_line_outside_the_spectrum_is_not_detected(method):
     assert any(issubclass(w.category, WeakLineWarning) and "not detected" in str(w.message) for w in caught)
 
 
+@pytest.mark.parametrize("method", ["fast", "lmfit"])
+def test_a_lone_jet_line_is_not_given_a_jet_by_its_label(method):
+    # A jet pair configured, one jet line in the data (blueshifted, z = -0.05): the second component
+    # is not detected, and the label of the one found (by increasing z) is not the data's to decide.
+    s = synthesize_spectrum(GRID, [LineComponent("H-alpha", z=-0.05, fwhm=700 * u.km / u.s, strength=2.5)], snr=30, seed=3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t = measure_lines(s, "H-alpha", components=2, method=method)
+    found = int(np.argmin([abs(z + 0.05) for z in t["z"]]))
+    assert "not_detected" in t["flags"][1 - found]
+    assert "which jet it belongs to is not decided" in t["message"][found]
+
+
 def test_profiles_lorentzian_voigt():
     x = np.arange(6300.0, 6900.0, 1.0) * u.AA
     s = synthesize_spectrum(
