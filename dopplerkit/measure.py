@@ -1627,8 +1627,9 @@ def _assess(setup, rows, info):
     if not (info.get("p_value", 1.0) >= P_VALUE_MIN):
         for r in rows:
             r["flags"].append("poor_fit")
-        rows[0]["notes"].append(
-            f"poor fit: chi-square {info['chi2']:.1f} for {info['dof']} degrees of freedom (probability {info.get('p_value', np.nan):.1e})"
+        rows[0]["notes"].insert(  # first: the fit as a whole is in doubt, whatever else is said
+            0,
+            f"poor fit: chi-square {info['chi2']:.1f} for {info['dof']} degrees of freedom (probability {info.get('p_value', np.nan):.1e})",
         )
     for gi, _grp in enumerate(setup.groups):
         comp = {}

@@ -205,6 +205,7 @@ def test_profiles_lorentzian_voigt():
     assert abs(t["z"][0] - 0.02) < 5 * t["z_err"][0]
     # lmfit's Voigt ties gamma to sigma: not the Lorentzian these data have, and the fit says so
     assert t["status"][0] == "suspect" and "poor_fit" in t["flags"][0]
+    assert t["message"][0].startswith("poor fit")  # the fit as a whole first, before any other note
     assert any(issubclass(w.category, FitQualityWarning) for w in caught)
 
 
