@@ -1221,7 +1221,8 @@ def _fill_table(source, n: int, keys=None, units=None):
     t.meta["comment"] = [
         "dopplerkit batch results; viewing angles in degrees (0 = moving straight at us); z < 0 is a blueshift; "
         "line centres in each line's catalogue unit (wavelengths in the medium of the medium column), "
-        "FWHM in km/s as observed (instrumental broadening not removed), integrated line fluxes in erg/(s cm2) (photon spectra: ph/(s cm2))"
+        "FWHM in km/s as observed (instrumental broadening not removed), integrated line fluxes in erg/(s cm2) (photon spectra: ph/(s cm2)); "
+        "error_scale: the factor line errors were scaled up by for noise correlated between neighbouring pixels (1: none)"
     ]
     return t
 
@@ -1646,8 +1647,8 @@ def _make_pool(n: int):
 
     Forked from this process when it runs a single thread (nothing can hold a lock across the fork,
     and forking inherits every imported module at no cost); otherwise (threads running, a retry) a
-    fork server. Either way the modules a worker needs for its first spectrum are imported once,
-    before the workers start (:data:`_WORKER_MODULES`): imported in each worker they cost every
+    fork server (spawn where there is none). With fork or a fork server the modules a worker needs
+    for its first spectrum are imported once, before the workers start (:data:`_WORKER_MODULES`): imported in each worker they cost every
     worker ~0.3-0.5 s of every run, and with fork this process keeps them for its next run.
     """
     import multiprocessing as mp

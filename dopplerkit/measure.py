@@ -1062,15 +1062,14 @@ class LineFitter:
             info["z"] = self._unpack(p)[0]  # per group and component
             return None, info
         rows = self._rows(p, err, at, _median(np.abs(np.diff(x))))
-        f, rho1 = _error_scale(xw, (yw - self._model(p, xw, B)[0]) / sw)
-        _apply_error_scale(rows, f, rho1, info)
+        f = _apply_error_scale(rows, info, xw, (yw - self._model(p, xw, B)[0]) / sw)
         info["delta_chi2"] = self._detection(rows, p, xw, yw, sw, B, chi2, lo, hi, x, f * f)
         if host is not None:
             nh = len(host.names)
             info["host"] = _host_note(host, p[-nh:] / (f * err[-nh:]))
         info["also_fitted"] = extra
         _check_identification(s, rows, x, y, sigma * f, host=host, also=extra)
-        _check_swaps(s, rows, x, y, sigma, cont, host, self.window, self.window_kms)
+        _check_swaps(s, rows, x, y, sigma, cont, host, self.window, self.window_kms, f * f)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
@@ -1232,11 +1231,13 @@ def _error_scale(xw, resid) -> tuple[float, float]:
     return max(1.0, math.sqrt(max(1.0 + 2.0 * total, 0.0))), rho1
 
 
-def _apply_error_scale(rows, f, rho1, info):
-    """Widen the rows' errors by ``f`` (from :func:`_error_scale`); ``info`` keeps the factor and the note :func:`_assess` adds."""
+def _apply_error_scale(rows, info, xw, resid) -> float:
+    """Measure the error scale on the normalised residuals ``resid`` (:func:`_error_scale`), widen
+    the rows' errors by it and return it; ``info`` keeps the factor and the note :func:`_assess` adds."""
+    f, rho1 = _error_scale(xw, resid)
     info["error_scale"] = f
     if f <= 1.0:
-        return
+        return f
     for r in rows:
         for key in ("z_err", "centre_err", "fwhm_err", "flux_err"):
             r[key] = r[key] * f
@@ -1248,6 +1249,7 @@ def _apply_error_scale(rows, f, rho1, info):
     info["error_scale_note"] = (
         f"residuals of neighbouring pixels are correlated (lag-1 correlation {rho1:.2f}), {why}: line errors scaled up by {f:.2f}"
     )
+    return f
 
 
 def _continuum_candidates(setup, xw, cw):
@@ -1551,7 +1553,7 @@ def _check_alternatives(setup, rows, x, y, sig, others):
 ID_ODDS_MIN = 100.0
 
 
-def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms):
+def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=1.0):
     """Flag ``id_ambiguous`` where tied lines read the other way round fit about as well.
 
     Lines tied to one z (Fe XXVI Ly-alpha and Fe XXV He-alpha of one outflow, H-alpha and He I of
@@ -1559,7 +1561,9 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms):
     At low S/N the two readings can fit almost equally well, and the error of z covers only the
     one found. For each tied component and each such swap inside the z range, both readings are
     fitted (fast engine) on the union of their windows; unless the fitted one's chi-square is
-    lower by more than 2 ln ID_ODDS_MIN, the component is ``id_ambiguous``.
+    lower by more than 2 ln ID_ODDS_MIN (times ``scale2``, the squared error scale: correlated
+    noise inflates chi-square differences as it does the detection test's), the component is
+    ``id_ambiguous``.
     """
     if not any(len(g) > 1 for g in setup.groups) or not rows:
         return
@@ -1576,7 +1580,7 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms):
     fitter = LineFitter(setup, window, window_kms)
     base = fitter.window_mask(x, fitted)
     zlo, zhi = setup.z_range
-    need = 2.0 * math.log(ID_ODDS_MIN)
+    need = 2.0 * math.log(ID_ODDS_MIN) * scale2
     for gi, grp in enumerate(setup.groups):
         grp = list(grp)
         if len(grp) < 2:
@@ -2146,8 +2150,7 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         "npix": int(xw.size),
     }
     rows = _lmfit_rows(setup, result, float(np.median(np.abs(np.diff(x)))))
-    f, rho1 = _error_scale(xw, (yw - result.best_fit) / sw)
-    _apply_error_scale(rows, f, rho1, info)
+    f = _apply_error_scale(rows, info, xw, (yw - result.best_fit) / sw)
     # the detection test of the weakest component of each line (the only one, for one component)
     info["delta_chi2"] = []
     p = result.params
@@ -2171,7 +2174,7 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         info["host"] = _host_note(host, [q.value / (f * q.stderr) if q.stderr else np.nan for q in pars])
     info["also_fitted"] = also
     _check_identification(setup, rows, x, y, sig * f, host=host, also=also)
-    _check_swaps(setup, rows, x, y, sig, cont0, host, window, window_kms)
+    _check_swaps(setup, rows, x, y, sig, cont0, host, window, window_kms, f * f)
     _check_edges(rows, x)
     _assess(setup, rows, info)
     return rows, info, result
