@@ -180,7 +180,8 @@ def test_line_outside_the_spectrum_is_not_detected(method):
 @pytest.mark.parametrize("method", ["fast", "lmfit"])
 def test_a_lone_jet_line_is_not_given_a_jet_by_its_label(method):
     # A jet pair configured, one jet line in the data (blueshifted, z = -0.05): the second component
-    # is not detected, and the label of the one found (by increasing z) is not the data's to decide.
+    # is not detected, and the label of the one found (by increasing z) is not the data's to decide
+    # (common practice, no source).
     s = synthesize_spectrum(GRID, [LineComponent("H-alpha", z=-0.05, fwhm=700 * u.km / u.s, strength=2.5)], snr=30, seed=3)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -535,6 +536,7 @@ def test_white_noise_keeps_its_errors():
 
 
 def test_both_engines_scale_errors_alike():
+    # the two engines fit the same model to the same pixels (a code path, no source needed)
     ta, _ = _resampled_pair(np.random.default_rng(7), [0.3, 0.7], method="lmfit")
     tb, _ = _resampled_pair(np.random.default_rng(7), [0.3, 0.7], method="fast")
     assert ta.meta["error_scale"] > 1.1
@@ -589,6 +591,7 @@ def test_counts_errors_from_the_data_do_not_bias_low_count_lines():
 
 
 def test_expected_errors_replace_only_what_followed_the_counts():
+    # Poisson counts: variance = expected counts (common practice, no source)
     from dopplerkit.measure import _expected_errors
 
     rng = np.random.default_rng(9)
@@ -612,7 +615,8 @@ def test_expected_errors_replace_only_what_followed_the_counts():
 
 
 def test_tied_lines_clearly_read_are_not_ambiguous():
-    # the same outflows with 30 times the counts: the swapped reading is far worse (no flag)
+    # the same outflows with 30 times the counts: the swapped reading is far worse (no flag;
+    # common practice, no source)
     rng = np.random.default_rng(10)
     for _ in range(8):
         s, z, _ = _ufo_counts(rng, scale=3000.0)
@@ -623,7 +627,7 @@ def test_tied_lines_clearly_read_are_not_ambiguous():
 
 def test_one_feature_of_two_tied_lines_is_ambiguous():
     # Only one absorption line in the band (the other beyond its end): Fe XXVI at z or Fe XXV at
-    # another z explain it equally; the row must say so rather than pick one.
+    # another z explain it equally; the row must say so rather than pick one (common practice, no source).
     rng = np.random.default_rng(11)
     e = np.arange(5.0, 8.2, 0.01)
     z = -0.12  # Fe XXV He-alpha w at 7.61 keV, Fe XXVI Ly-alpha at 7.92 keV: cut the band at 7.75
@@ -643,7 +647,8 @@ def test_one_feature_of_two_tied_lines_is_ambiguous():
 
 def test_expected_errors_keep_the_variance_of_a_narrow_line_peak():
     # A line one pixel wide stands far above its neighbours: that is structure, not the pixel's
-    # noise; its variance (Poisson: the expected counts) must stay near the counts there.
+    # noise; its variance (Poisson: the expected counts; common practice, no source) must stay
+    # near the counts there.
     from dopplerkit.measure import _expected_errors
 
     rng = np.random.default_rng(12)
