@@ -1561,9 +1561,9 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
     At low S/N the two readings can fit almost equally well, and the error of z covers only the
     one found. For each tied component and each such swap inside the z range, both readings are
     fitted (fast engine) on the union of their windows; unless the fitted one's chi-square is
-    lower by more than 2 ln ID_ODDS_MIN (times ``scale2``, the squared error scale: correlated
-    noise inflates chi-square differences as it does the detection test's), the component is
-    ``id_ambiguous``.
+    lower by more than 2 ln ID_ODDS_MIN (after dividing by ``scale2``, the squared error scale:
+    correlated noise inflates chi-square differences as it does the detection test's), the
+    component is ``id_ambiguous``.
     """
     if not any(len(g) > 1 for g in setup.groups) or not rows:
         return
@@ -1580,7 +1580,7 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
     fitter = LineFitter(setup, window, window_kms)
     base = fitter.window_mask(x, fitted)
     zlo, zhi = setup.z_range
-    need = 2.0 * math.log(ID_ODDS_MIN) * scale2
+    need = 2.0 * math.log(ID_ODDS_MIN)
     for gi, grp in enumerate(setup.groups):
         grp = list(grp)
         if len(grp) < 2:
@@ -1607,7 +1607,7 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
                         other = fitter.fit_arrays(x, y, sig, starts=alt, cont=cont, host=host, keep=keep, assess=False)[1]
                     except (np.linalg.LinAlgError, ValueError):
                         continue
-                    d = other["chi2"] - c0
+                    d = (other["chi2"] - c0) / scale2  # in units of white-noise chi-square
                     z_end = float(other["z"][gi][k])
                     if abs(z_end - z2) >= abs(z_end - z):
                         continue  # the other reading slid back to the fitted one: it is no rival
@@ -1617,11 +1617,13 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
                     for r in mine:
                         if "id_ambiguous" not in r["flags"]:
                             r["flags"].append("id_ambiguous")
-                    how = "better" if d < 0 else "almost as well"
+                    if d < 0:
+                        how = f"fits better (chi-square {d:+.1f}: {math.exp(min(-0.5 * d, 700.0)):.3g} times more likely)"
+                    else:
+                        how = f"fits almost as well (the fitted reading is only {math.exp(0.5 * d):.3g} times more likely; {ID_ODDS_MIN:g} needed)"
                     mine[0]["notes"].append(
                         f"{setup.labels[k]} component: {setup.names[lj]} at z = {z2:.5f}, where {setup.names[li]} is at z = {z:.5f}, "
-                        f"fits {how} (chi-square {d:+.1f}; odds {math.exp(min(-0.5 * d, 700.0)):.3g}:1, under {ID_ODDS_MIN:g}:1): "
-                        "which line is which is not decided"
+                        f"{how}: which line is which is not decided"
                     )
                     break  # one note per line of the component
 
