@@ -1603,11 +1603,11 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
                     alt[gi][k] = (z2, w, a2)
                     keep = base | fitter.window_mask(x, alt)
                     try:
-                        c0 = fitter.fit_arrays(x, y, sig, starts=fitted, cont=cont, host=host, keep=keep, assess=False)[1]["chi2"]
+                        same = fitter.fit_arrays(x, y, sig, starts=fitted, cont=cont, host=host, keep=keep, assess=False)[1]
                         other = fitter.fit_arrays(x, y, sig, starts=alt, cont=cont, host=host, keep=keep, assess=False)[1]
                     except (np.linalg.LinAlgError, ValueError):
                         continue
-                    d = (other["chi2"] - c0) / scale2  # in units of white-noise chi-square
+                    d = (other["chi2"] - same["chi2"]) / scale2  # in units of white-noise chi-square
                     z_end = float(other["z"][gi][k])
                     if abs(z_end - z2) >= abs(z_end - z):
                         continue  # the other reading slid back to the fitted one: it is no rival
@@ -1625,7 +1625,28 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
                         f"{setup.labels[k]} component: {setup.names[lj]} at z = {z2:.5f}, where {setup.names[li]} is at z = {z:.5f}, "
                         f"{how}: which line is which is not decided"
                     )
+                    _flag_dependants(setup, rows, same["z"], other["z"], (gi, k))
                     break  # one note per line of the component
+
+
+def _flag_dependants(setup, rows, z_same, z_other, undecided):
+    """Flag ``id_ambiguous`` every other component whose z moves by more than its error between
+    the two readings of the ``undecided`` (group, component): fitted together, its value depends
+    on which reading is right (a line of the other reading may sit on it, unmodelled)."""
+    k = undecided[1]
+    for r in rows:
+        g, c = r["group"], r["k"]
+        if (g, c) == undecided or "id_ambiguous" in r["flags"]:
+            continue
+        moved = abs(float(z_other[g][c]) - float(z_same[g][c]))
+        if np.isfinite(moved) and moved > r["z_err"]:
+            for q in rows:
+                if q["group"] == g and q["k"] == c:
+                    q["flags"].append("id_ambiguous")
+            r["notes"].append(
+                f"{r['line']} {r['component']}: its z moves by {moved / r['z_err']:.1f} sigma between the two readings of the "
+                f"{setup.labels[k]} component, which the data do not decide"
+            )
 
 
 def _assess(setup, rows, info):
