@@ -62,6 +62,7 @@ FLAGS = {
     "faint": "detected, but its chi-square drop is under twice the detection threshold: its curvature errors are too small there",
     "edge": "within one FWHM of an end of the spectrum (or of a gap): the line and the continuum cannot be told apart",
     "id_ambiguous": "tied lines read the other way round (line j where line i is, another z) fit about as well: z is not decided",
+    "rival": "another feature in the z range, unexplained by the fit and comparable in flux, could be this component: which features are the components is not decided",
 }
 #: Goodness-of-fit threshold: a fit whose chi-square probability is below this is ``poor_fit``.
 P_VALUE_MIN = 1e-3
@@ -1070,6 +1071,7 @@ class LineFitter:
         info["also_fitted"] = extra
         _check_identification(s, rows, x, y, sigma * f, host=host, also=extra)
         _check_swaps(s, rows, x, y, sigma, cont, host, self.window, self.window_kms, f * f)
+        _check_rivals(s, rows, x, y, sigma * f, cont if cont is not None else _median_continuum(x, y), host)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
@@ -1365,13 +1367,14 @@ def _flux_at(x, y, sig, mu, sg, others):
     A linear fit over +-5 sigma: a straight local continuum, this Gaussian, and each fitted
     component (``others``, see :func:`_others`) that reaches the window, all with free
     amplitudes. None where the spectrum does not cover the window; the fitted component itself
-    (a dict) where one lies within one FWHM of ``mu`` (the two cannot be told apart there).
+    (a dict) where one lies within one FWHM of ``mu`` (the two cannot be told apart there),
+    unless it is marked ``nested`` (a narrow line on a much wider one: fitted beside it).
     """
     half = 5 * sg
     if not (math.isfinite(mu) and math.isfinite(sg) and sg > 0):
         return None
     for o in others:
-        if abs(o["mu"] - mu) < _FWHM_GAUSS * max(o["sg"], sg):
+        if abs(o["mu"] - mu) < _FWHM_GAUSS * max(o["sg"], sg) and not o.get("nested"):
             return o
     if not x[0] + half < mu < x[-1] - half:
         return None
@@ -1627,6 +1630,137 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
                     )
                     _flag_dependants(setup, rows, same["z"], other["z"], (gi, k))
                     break  # one note per line of the component
+
+
+#: A feature in the z range that the fit does not explain, seen at ``_ID_SIGMA`` and at least this
+#: fraction of the weakest detected component's flux in the same line, could be one of the
+#: components in its place (``rival``). A judgement: a third of the flux is well inside what
+#: one jet's line varies by between epochs (common practice, no source).
+RIVAL_FRACTION = 0.3
+
+
+def _rival_candidates(setup, grp, x, resid_rel, n_candidates=6):
+    """Peaks of a z scan of ``resid_rel`` (residual / continuum) summed over the lines of ``grp``: [(z, fwhm_kms)]."""
+    rest = setup.rest[grp]
+    dx = _median(np.diff(x))
+    k = np.exp(-0.5 * (np.arange(-6, 7) / 2.0) ** 2)
+    rs = np.convolve(resid_rel, k / k.sum(), mode="same")
+    lo_z = max(setup.z_range[0], (x[0] / rest.max() - 1) if setup.wavelike else (rest.min() / x[-1] - 1))
+    hi_z = min(setup.z_range[1], (x[-1] / rest.min() - 1) if setup.wavelike else (rest.max() / x[0] - 1))
+    step = dx / x[x.size // 2] / 2
+    if not (np.isfinite(step) and step > 0 and hi_z > lo_z + 3 * step):
+        return []
+    zg = np.arange(lo_z, hi_z, step)
+    score = np.zeros_like(zg)
+    for r in rest:
+        pos = r * (1 + zg) if setup.wavelike else r / (1 + zg)
+        inside = (pos >= x[0]) & (pos <= x[-1])
+        score += np.where(inside, np.interp(pos, x, rs), 0.0)
+    peaks = np.flatnonzero((score[1:-1] > score[:-2]) & (score[1:-1] >= score[2:]) & (score[1:-1] > 0)) + 1
+    out = []
+    for i in peaks[np.argsort(score[peaks])[::-1]][:n_candidates]:
+        below = score < 0.5 * score[i]
+        j1 = i - int(np.argmax(below[i::-1])) if below[: i + 1].any() else 0
+        j2 = i + int(np.argmax(below[i:])) if below[i:].any() else zg.size - 1
+        fwhm = float(np.clip(max(zg[j2] - zg[j1], 2 * step) / (1 + zg[i]) * C_KMS, *setup.fwhm_range))
+        out.append((float(zg[i]), fwhm))
+    return out
+
+
+def _check_rivals(setup, rows, x, y, sig, cont, host=None):
+    """Flag ``rival`` where a feature the fit leaves unexplained could be a component instead.
+
+    The spectrum is searched (a z scan of the residuals from the fitted lines, on the running-median
+    continuum ``cont``) for features of the configured lines inside the z range. One that no fitted
+    component or host line explains, nor a line of the same gas at a fitted z (up to twice its
+    ratio in ``_SAME_GAS`` to the fitted line), seen at ``_ID_SIGMA`` and
+    with at least ``RIVAL_FRACTION`` of the weakest detected component's flux in that line, could
+    be that component (for a jet pair: only where the pair it would make is physical). Then which
+    features are the components is not decided by the data: every component of the line is flagged.
+    Typical case: a stationary line (disk, wind) beside a moving pair, the fit taking it for a jet.
+    """
+    if not rows or cont is None:
+        return
+    sign = 1.0 if setup.kind == "emission" else -1.0
+    model = np.zeros_like(x)
+    explained = []  # what the fit modelled, as _flux_at's "others" (free amplitudes there)
+    companions = []  # lines of the same gas at a fitted z, not fitted: (centre, FWHM, largest plausible flux)
+    ratio = {n: q for n, _, q in setup.same_gas}
+    for r in rows:
+        if not _usable(r) or not np.isfinite(r["centre"]):
+            continue
+        sg = abs(r["centre"]) * r["fwhm"] / (C_KMS * _FWHM_GAUSS)
+        model += sign * abs(r["flux"]) * np.exp(-0.5 * ((x - r["centre"]) / sg) ** 2) / (sg * 2.5066282746310002)
+        explained.append({"mu": r["centre"], "sg": sg, "row": r})
+        if setup.kind == "emission" and r["line"] in ratio:
+            for name, rest, q in setup.same_gas:
+                if name != r["line"]:
+                    mu = _position(setup, rest, r["z"])
+                    # twice the generous ratio of _SAME_GAS: what such a line could add at most
+                    companions.append((mu, abs(mu) * r["fwhm"] / C_KMS, 2.0 * q / ratio[r["line"]] * abs(r["flux"])))
+    hosted = None  # narrow host lines: fitted, or found now if a candidate falls on one (lazily)
+    hmu = None
+    if setup.host and setup.kind == "emission":
+        hmu = _position(setup, np.array([q for _, q in setup.host]), setup.host_z)
+    if host is not None:
+        explained += host.others(setup.wavelike)
+    resid_rel = sign * (y - cont - model) / np.maximum(np.abs(cont), 1e-300)
+    for gi, grp in enumerate(setup.groups):
+        mine = [r for r in rows if r["group"] == gi]
+        seen = [r for r in mine if "not_detected" not in r["flags"] and _usable(r)]
+        if not seen:
+            continue
+        zs = sorted({(r["k"], r["z"]) for r in mine})
+        found = None
+        weakest = {}  # per line of the group: the weakest detected component's flux
+        for q in seen:
+            weakest[q["lidx"]] = min(weakest.get(q["lidx"], np.inf), abs(q["flux"]))
+
+        def measured(mu, width, beside):
+            got = _flux_at(x, y, sig, mu, abs(mu) * width / (C_KMS * _FWHM_GAUSS), beside)
+            if got is None or isinstance(got, dict):
+                return None
+            sg = abs(mu) * width / (C_KMS * _FWHM_GAUSS)
+            # less what lines of the same gas there may explain
+            f = sign * got[0] - sum(fmax for c, fw, fmax in companions if abs(c - mu) < max(fw, _FWHM_GAUSS * sg))
+            return f, got[1]
+
+        for zc, fc in _rival_candidates(setup, list(grp), x, resid_rel):
+            if setup.jet_pair:
+                zk = [z for _, z in zs]
+                if not any((1 + min(zc, zk[1 - j])) * (1 + max(zc, zk[1 - j])) >= 1 - 3e-3 for j in range(2)):
+                    continue  # no pair it could make is physical
+            for lidx, least in weakest.items():
+                mu = _position(setup, setup.rest[lidx], zc)
+                got = measured(mu, fc, explained)
+                if got is None or not (got[0] > _ID_SIGMA * got[1] and got[0] >= RIVAL_FRACTION * least):
+                    continue
+                if hmu is not None and np.any(np.abs(hmu - mu) < abs(mu) * (HOST_DV_MAX + 0.5 * fc) / C_KMS):
+                    # on a host line's rest position: a narrow host line there is no rival, only a much
+                    # wider line beside it could be (measured again with the host lines beside it)
+                    if hosted is None:
+                        hosted = host if host is not None else _find_host(setup, x, y, sig)
+                        hosted = [] if hosted is None else [{**o, "nested": True} for o in hosted.others(setup.wavelike)]
+                    if hosted:
+                        width = max(fc, 3 * max(o["sg"] for o in hosted) * _FWHM_GAUSS * C_KMS / abs(mu))
+                        got = measured(mu, width, [o for o in explained if o["row"] is not None] + hosted)
+                        if got is None or not (got[0] > _ID_SIGMA * got[1] and got[0] >= RIVAL_FRACTION * least):
+                            continue
+                f, fe = got
+                if found is None or f / least > found[3]:
+                    found = (zc, mu, f / fe, f / least, setup.names[lidx])
+        if found is None:
+            continue
+        zc, mu, q, frac, line = found
+        for r in mine:
+            if "rival" not in r["flags"]:
+                r["flags"].append("rival")
+        mine[0]["notes"].append(
+            f"a feature at {mu:.6g} that the fit leaves unexplained ({q:.0f} sigma, {frac:.2g} times the weakest fitted "
+            f"{line} component) would be {line} at z = {zc:.5f}: which features are the "
+            f"{' and '.join(setup.labels[: setup.components])} {'components' if setup.components > 1 else 'component'} is not "
+            "decided by the data (exclude it with the z range if it is known not to be one)"
+        )
 
 
 def _flag_dependants(setup, rows, z_same, z_other, undecided):
@@ -2198,6 +2332,7 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
     info["also_fitted"] = also
     _check_identification(setup, rows, x, y, sig * f, host=host, also=also)
     _check_swaps(setup, rows, x, y, sig, cont0, host, window, window_kms, f * f)
+    _check_rivals(setup, rows, x, y, sig * f, cont0, host)
     _check_edges(rows, x)
     _assess(setup, rows, info)
     return rows, info, result
