@@ -121,6 +121,8 @@ _BUILTIN: list[tuple[str, float, str, str | None, str, tuple[str, ...]]] = [
     ("H-delta", 4102.892, "Angstrom", "vacuum", _NIST, ("Hd", "H I 4102")),
     ("He I 5876", 5875.621, "Angstrom", "air", _NIST, ("HeI 5876", "He I 5875")),
     ("He I 6678", 6678.151, "Angstrom", "air", _NIST, ("HeI 6678",)),
+    ("He I 7065", 7065.19, "Angstrom", "air", _NIST, ("HeI 7065",)),
+    ("He I 4471", 4471.48, "Angstrom", "air", _NIST, ("HeI 4471",)),
     ("He II 4686", 4685.710, "Angstrom", "air", _NIST, ("HeII 4686",)),
     ("[O III] 5007", 5006.843, "Angstrom", "air", _NIST, ("OIII 5007", "O III 5007")),
     ("[O III] 4959", 4958.911, "Angstrom", "air", _NIST, ("OIII 4959", "O III 4959")),

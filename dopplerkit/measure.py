@@ -79,6 +79,10 @@ FAINT_FACTOR = 2.0
 # measured centre is pulled by about offset x f_other/(f_line + f_other); beyond its error that is
 # a blend.
 _SAME_GAS = {"H-alpha": 1.0, "H-beta": 0.35, "H-gamma": 0.16, "H-delta": 0.09, "He I 5876": 0.10, "He I 6678": 0.03}
+# Weaker lines the same gas shows too (He I 7065 0.05, He I 4471 0.04 of H-alpha in jet spectra;
+# common practice, no source): they explain a feature that is seen (see _check_rivals), but are not
+# suspected under a measured line unseen (that would make every bright pair a possible blend).
+_SAME_GAS_WEAKER = {"He I 7065": 0.05, "He I 4471": 0.04}
 
 # What else the same gas shows beside an emission line: line -> ((companion, lo, hi, required), ...)
 # with the flux ratio companion/line expected in [lo, hi]. A *required* companion that the
@@ -197,6 +201,8 @@ class FitSetup:
     #: catalogue lines that could explain the features instead: (name, rest, companions)
     alternatives: list = field(default_factory=list)
     same_gas: list = field(default_factory=list)
+    #: same_gas and the weaker lines of _SAME_GAS_WEAKER: what can explain a feature that is seen
+    seen_gas: list = field(default_factory=list)
     #: narrow host lines to look for: (name, rest) on the fit axis, at redshift ``host_z``
     host: list = field(default_factory=list)
     host_z: float = 0.0
@@ -299,6 +305,7 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
     same_gas = []
     if any(n in _SAME_GAS for n in names):
         same_gas = [(n, float(rest_value(n, unit, medium=medium).value), ratio) for n, ratio in _SAME_GAS.items()]
+    seen_gas = same_gas + [(n, float(rest_value(n, unit, medium=medium).value), q) for n, q in _SAME_GAS_WEAKER.items()] if same_gas else []
     return FitSetup(
         names,
         np.asarray(rest, float),
@@ -313,6 +320,7 @@ def _make_setup(lines, unit, medium, components, tie, kind, profile, continuum, 
         companions=companions,
         alternatives=alternatives,
         same_gas=same_gas,
+        seen_gas=seen_gas,
         host=host_lines,
         host_z=float(host_z),
         axis_medium=axis_medium,
@@ -1673,7 +1681,7 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
     The spectrum is searched (a z scan of the residuals from the fitted lines, on the running-median
     continuum ``cont``) for features of the configured lines inside the z range. One that no fitted
     component or host line explains, nor a line of the same gas at a fitted z (up to twice its
-    ratio in ``_SAME_GAS`` to the fitted line), seen at ``_ID_SIGMA`` and
+    ratio in ``_SAME_GAS`` or ``_SAME_GAS_WEAKER`` to the fitted line), seen at ``_ID_SIGMA`` and
     with at least ``RIVAL_FRACTION`` of the weakest detected component's flux in that line, could
     be that component (for a jet pair: only where the pair it would make is physical). Then which
     features are the components is not decided by the data: every component of the line is flagged.
@@ -1693,7 +1701,7 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
         model += sign * abs(r["flux"]) * np.exp(-0.5 * ((x - r["centre"]) / sg) ** 2) / (sg * 2.5066282746310002)
         explained.append({"mu": r["centre"], "sg": sg, "row": r})
         if setup.kind == "emission" and r["line"] in ratio:
-            for name, rest, q in setup.same_gas:
+            for name, rest, q in setup.seen_gas:
                 if name != r["line"]:
                     mu = _position(setup, rest, r["z"])
                     # twice the generous ratio of _SAME_GAS: what such a line could add at most
