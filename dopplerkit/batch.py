@@ -112,7 +112,7 @@ _ALLOWED = {
     "line": {"name", "rest", "medium", "components", "label"},
     "kinematics": {"model", "beta_max", "constraints"},
     "spectra": {"medium", "spectral_unit", "flux_unit"},
-    "fit": {"tie", "kind", "continuum", "continuum_degree", "window", "window_kms", "z_min", "z_max"},
+    "fit": {"tie", "kind", "continuum", "continuum_degree", "window", "window_kms", "z_min", "z_max", "exclude"},
     "host": {"lines", "z"},
 }
 #: Default largest speed: the line search covers the redshifts it allows (override with beta_max or z_min/z_max).
@@ -149,12 +149,23 @@ class BatchConfig:
     host_lines: object = "auto"
     host_z: float = 0.0
     constraints: tuple = ()
+    #: ranges of the spectral axis left out of every fit: ((low, high), ...) as quantity strings
+    exclude: tuple = ()
 
     def as_dict(self) -> dict:
         """The configuration as a plain dict (what workers receive)."""
         return {
-            k: (list(map(dict, v)) if k in ("lines", "constraints") else list(v) if isinstance(v, tuple) else v)
+            k: (
+                list(map(dict, v))
+                if k in ("lines", "constraints")
+                else [list(p) for p in v]
+                if k == "exclude"
+                else list(v)
+                if isinstance(v, tuple)
+                else v
+            )
             for k, v in self.__dict__.items()
+            if not (k == "exclude" and not v)  # absent when empty: the hash of earlier configurations stays
         }
 
     @property
@@ -402,6 +413,7 @@ def parse_config(data: dict, where: str = "config", base: str | Path | None = No
         host_lines = tuple(get_line(h).name for h in host_lines)
     else:
         _err(f'{where}: [host] lines must be "auto", "none" or a list of catalogue line names, got {host_lines!r}')
+    exclude = _exclude_ranges(fit.get("exclude", []), where)
     # default search range: the redshifts a speed up to beta_max can give (head-on to straight away)
     from .kinematics import redshift
 
@@ -428,7 +440,32 @@ def parse_config(data: dict, where: str = "config", base: str | Path | None = No
         host_lines,
         host_z,
         constraints,
+        exclude,
     )
+
+
+def _exclude_ranges(value, where) -> tuple:
+    """``[fit] exclude``: a list of [low, high] pairs of quantity strings ("6540 Angstrom"); checked, kept as text."""
+    import astropy.units as u
+
+    example = '[["6540 Angstrom", "6590 Angstrom"], ["7590 Angstrom", "7700 Angstrom"]]'
+    if not isinstance(value, list):
+        _err(f"{where}: [fit] exclude must be a list of [low, high] ranges, e.g. {example}; got {value!r}")
+    out = []
+    for pair in value:
+        if not (isinstance(pair, list) and len(pair) == 2 and all(isinstance(q, str) for q in pair)):
+            _err(f"{where}: [fit] exclude: each range must be [low, high] as quantity strings, e.g. {example}; got {pair!r}")
+        try:
+            lo, hi = (u.Quantity(q) for q in pair)
+            hi.to(lo.unit, equivalencies=u.spectral())
+            if not lo.unit.is_equivalent(u.m, equivalencies=u.spectral()):
+                raise u.UnitsError(f"{lo.unit} is not a spectral unit")
+        except (TypeError, ValueError, u.UnitsError) as exc:
+            _err(f"{where}: [fit] exclude: {pair!r} is not a range of wavelengths, frequencies or energies ({exc})")
+        if not (np.isfinite(lo.value) and np.isfinite(hi.value)):
+            _err(f"{where}: [fit] exclude: {pair!r}: the ends must be finite")
+        out.append(tuple(pair))
+    return tuple(out)
 
 
 def _line_dicts(cfg: dict):
@@ -743,6 +780,15 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     from .io import _parse_unit
 
     axis_u = _parse_unit(arr.axis_unit)  # parsed once per unit string (a cache): this runs for every file
+    flux = arr.flux
+    if cfg.get("exclude"):
+        from .measure import excluded_pixels
+
+        if "_exclude" not in cache:
+            cache["_exclude"] = [tuple(u.Quantity(q) for q in pair) for pair in cfg["exclude"]]
+        out = excluded_pixels(arr.axis, axis_u, cache["_exclude"])
+        if out.any():
+            flux = np.where(out, np.nan, arr.flux)  # NaN pixels are left out of the fit
     if axis_u.is_equivalent(u.m) and arr.medium is None:
         raise ValueError(
             "wavelength medium unknown: the file does not say (MEDIUM keyword, CTYPE1 AWAV/WAVE) and [spectra] medium is not set"
@@ -756,7 +802,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     notes: list = []
     redchi, pvals, conts, hosts, scales = [], [], [], [], []
     for _lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
-        rows, info = fitter.measure(arr.axis, arr.flux, arr.sigma)
+        rows, info = fitter.measure(arr.axis, flux, arr.sigma)
         if info.get("host"):
             hosts.append(info["host"])
         redchi.append(info["redchi"])
@@ -878,6 +924,7 @@ def measure_file(path: str | Path, config) -> tuple:
             window_kms=c["window_kms"],
             host=_host_arg(c),
             host_z=c.get("host_z", 0.0),
+            exclude=[tuple(u.Quantity(q) for q in pair) for pair in c.get("exclude", ())] or None,
         )
         labels = {str(o if isinstance(o, str) else ln.get("label")): ln["label"] for o, ln in zip(objs, group, strict=True)}
         t["label"] = [labels.get(str(x), str(x)) for x in t["line"]]

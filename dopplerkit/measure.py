@@ -1767,7 +1767,7 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
             f"a feature at {mu:.6g} that the fit leaves unexplained ({q:.0f} sigma, {frac:.2g} times the weakest fitted "
             f"{line} component) would be {line} at z = {zc:.5f}: which features are the "
             f"{' and '.join(setup.labels[: setup.components])} {'components' if setup.components > 1 else 'component'} is not "
-            "decided by the data (exclude it with the z range if it is known not to be one)"
+            "decided by the data (if it is known not to be one, leave it out: [fit] exclude, measure_lines(exclude=), or the z range)"
         )
 
 
@@ -2507,6 +2507,41 @@ def _warn_flags(t):
         )
 
 
+def excluded_pixels(axis, unit, exclude) -> np.ndarray:
+    """Boolean mask of the pixels inside any of the ``exclude`` ranges.
+
+    Parameters
+    ----------
+    axis : array
+        Spectral axis values in ``unit``.
+    unit : astropy unit
+        The axis unit (wavelength, frequency, energy or wavenumber).
+    exclude : sequence of (Quantity, Quantity)
+        Ranges (either end first) in any spectral unit; a wavelength range is taken in the
+        spectrum's own medium (air or vacuum, as its axis is). None or empty: nothing excluded.
+    """
+    mask = np.zeros(np.shape(axis), bool)
+    if exclude is None:
+        return mask
+    try:
+        pairs = list(exclude)
+    except TypeError:
+        raise ValueError(f"exclude must be a sequence of (low, high) Quantity pairs, got {exclude!r}") from None
+    for pair in pairs:
+        try:
+            lo, hi = pair
+            a = u.Quantity(lo).to_value(unit, equivalencies=u.spectral())
+            b = u.Quantity(hi).to_value(unit, equivalencies=u.spectral())
+        except (TypeError, ValueError, u.UnitsError) as exc:
+            raise ValueError(
+                f"exclude: each range must be a (low, high) pair of spectral quantities convertible to {unit}, got {pair!r} ({exc})"
+            ) from None
+        if not (np.isfinite(a) and np.isfinite(b)):
+            raise ValueError(f"exclude: range ends must be finite, got {pair!r}")
+        mask |= (axis >= min(a, b)) & (axis <= max(a, b))
+    return mask
+
+
 def measure_lines(
     spectrum,
     lines,
@@ -2524,6 +2559,7 @@ def measure_lines(
     window_kms: float = 3000.0,
     host: str | Sequence | None = "auto",
     host_z: float = 0.0,
+    exclude: Sequence | None = None,
     return_result: bool = False,
 ):
     """Fit line centres in a spectrum: one table row per line and component.
@@ -2576,6 +2612,10 @@ def measure_lines(
         (BIC); they are listed in ``meta["also_fitted"]``.
     host_z : float
         Redshift of the host (0 for a Galactic source).
+    exclude : sequence of (Quantity, Quantity), optional
+        Ranges of the spectral axis to leave out (a stationary line, a telluric band), in any
+        spectral unit, in the spectrum's own medium; added to ``spectrum.mask``. A component
+        within one FWHM of such a gap is flagged ``edge``.
     return_result : bool
         Also return the lmfit ModelResult (method "lmfit") or the fit info dict. The
         ModelResult's own errors are lmfit's: they are not scaled by ``meta["error_scale"]``
@@ -2592,7 +2632,7 @@ def measure_lines(
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is
         flagged, else "suspect"), ``flags`` (comma-separated, see :data:`FLAGS`: "at_bound",
         "no_errors", "poor_fit", "not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous",
-        "unresolved", "edge") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
+        "rival", "unresolved", "edge") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
 
     Notes
     -----
@@ -2609,6 +2649,10 @@ def measure_lines(
       the [O III] doublet ratio) are missing where the fitted z puts them is ``id_contradicted``;
     * tied lines that fit about as well read the other way round (line j where line i is, at
       another z; likelihood ratio under :data:`ID_ODDS_MIN`) are ``id_ambiguous``;
+    * a feature in the z range that the fit leaves unexplained (no fitted component, host line or
+      line of the same gas at a fitted z), seen at 5 sigma with at least :data:`RIVAL_FRACTION`
+      of the weakest component's flux, could be a component instead: the line is ``rival``
+      (a stationary line beside a moving pair; leave it out with ``exclude`` or ``z_range``);
     * where the residuals of neighbouring pixels are correlated (a resampled spectrum whose errors
       were propagated pixel by pixel), the errors of centre, z, width and flux are scaled up by
       the factor such noise implies (``meta["error_scale"]``, the message says so) and the
@@ -2625,7 +2669,11 @@ def measure_lines(
             "the medium of the wavelength axis is unknown (no meta['medium'], no FITS CTYPE AWAV/WAVE): pass medium='air' or 'vacuum' so air and vacuum rest wavelengths are not mixed"
         )
     setup = _make_setup(lines, unit, med, components, tie, kind, profile, continuum, continuum_degree, z_range, host, host_z)
-    x, y, sig, fscale, note = _prepare(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), spectrum.mask)
+    mask = spectrum.mask
+    if exclude is not None:
+        out = excluded_pixels(spectrum.spectral_axis.value, unit, exclude)
+        mask = out if mask is None else (np.asarray(mask, bool) | out)
+    x, y, sig, fscale, note = _prepare(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), mask)
     x = _to_fit_axis(setup, x, unit)
     starts, cont0, found = _begin(setup, x, y, sig, window, window_kms)
     if method == "fast":

@@ -883,3 +883,44 @@ def test_per_object_constraints_join_the_pair_fit(tmp_path, caplog):
         parse_config(
             {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair", "constraints": "none.ecsv"}}, base=tmp_path
         )
+
+
+def test_exclude_ranges_in_the_config(tmp_path):
+    # A broad stationary H-alpha (FWHM 2000 km/s at rest, invented) beside a jet pair: without
+    # help the row is suspect ('rival': which two features are the pair is not decided); with the
+    # stationary line left out by [fit] exclude, the pair is measured and ok (common practice:
+    # masking a known feature; no source)
+    from dopplerkit.batch import process_chunk
+
+    base = {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair"}, "spectra": {"medium": "vacuum"}}
+    assert parse_config(base).hash == parse_config({**base, "fit": {"exclude": []}}).hash  # no exclusion: the same hash
+    cut = {**base, "fit": {"exclude": [["6470 Angstrom", "6660 Angstrom"]]}}
+    assert parse_config(cut).exclude == (("6470 Angstrom", "6660 Angstrom"),)
+    assert parse_config(cut).hash != parse_config(base).hash
+    for bad, match in (
+        ("6470-6660", "must be a list of"),
+        ([["6470 Angstrom"]], "each range must be"),
+        ([[6470, 6660]], "each range must be"),
+        ([["6470 Angstrom", "3 kg"]], "not a range of wavelengths"),
+        ([["6470 kg", "6660 kg"]], "not a range of wavelengths"),
+        ([["nan Angstrom", "6660 Angstrom"]], "must be finite"),
+    ):
+        with pytest.raises(ConfigError, match=match):
+            parse_config({**base, "fit": {"exclude": bad}})
+    kms = u.km / u.s
+    b, a = 0.2, 50.0
+    za, zr = float(dk.redshift(b, a)), float(dk.redshift(b, 180 - a))
+    comps = [LineComponent("H-alpha", z=z, fwhm=800 * kms, strength=q) for z, q in ((za, 2.0), (zr, 1.2))]
+    comps += [LineComponent("H-alpha", z=0.0, fwhm=2000 * kms, strength=2.0)]
+    path = tmp_path / "stationary.fits"
+    write_spectrum(synthesize_spectrum(np.arange(5000.0, 8500.0, 2.0) * u.AA, comps, snr=30, seed=5, resolution=4000), path)
+    row = process_chunk([str(path)], [None], parse_config(base).as_dict())[0]
+    assert row["status"] == "suspect" and "rival" in row["flags"], row["message"]
+    row = process_chunk([str(path)], [None], parse_config(cut).as_dict())[0]
+    assert row["status"] == "ok", row["message"]
+    assert abs(row["beta"] - b) < 5 * row["beta_err"] and abs(row["viewing_angle"] - a) < 5 * row["viewing_angle_err"]
+    # the same through measure_file (measure_lines underneath)
+    from dopplerkit.batch import measure_file
+
+    _, t = measure_file(path, cut)
+    assert set(t["status"]) == {"ok"}

@@ -759,3 +759,25 @@ def test_weaker_helium_lines_of_a_jet_are_not_rivals():
             warnings.simplefilter("ignore")
             t = measure_lines(s, "H-alpha", components=2, method="fast", z_range=(-0.4, 0.4))
         assert "rival" not in ",".join(t["flags"]), list(t["message"])
+
+
+def test_excluded_ranges_convert_between_axes():
+    # a wavelength range on a frequency axis: nu = c / lambda (astropy's spectral equivalency as
+    # the reference); either end first; an unconvertible unit names the parameter
+    from dopplerkit.measure import excluded_pixels
+
+    nu = np.linspace(4.0e14, 5.0e14, 1001)  # Hz
+    m = excluded_pixels(nu, u.Hz, [(7000 * u.AA, 6500 * u.AA)])
+    lo, hi = (7000 * u.AA).to_value(u.Hz, u.spectral()), (6500 * u.AA).to_value(u.Hz, u.spectral())
+    assert np.array_equal(m, (nu >= lo) & (nu <= hi)) and m.any()
+    assert not excluded_pixels(nu, u.Hz, None).any()
+    with pytest.raises(ValueError, match="exclude: each range"):
+        excluded_pixels(nu, u.Hz, [(1 * u.kg, 2 * u.kg)])
+    # measure_lines leaves those pixels out: a stationary line there is no rival
+    rng = np.random.default_rng(43)
+    s, za, zr = _pair_beside_a_stationary_line(rng)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t = measure_lines(s, "H-alpha", components=2, method="fast", z_range=(-0.4, 0.4), exclude=[(6470 * u.AA, 6660 * u.AA)])
+    assert "rival" not in ",".join(t["flags"]), list(t["message"])
+    assert abs(t["z"][0] - za) < 5 * t["z_err"][0] and abs(t["z"][1] - zr) < 5 * t["z_err"][1]
