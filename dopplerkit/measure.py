@@ -880,6 +880,7 @@ class LineFitter:
         NaN pixels are dropped; flux and flux_err in the rows are in the units of ``y``.
         """
         x, y, sigma, fscale, note = _prepare(x, y, sigma)
+        x_user = x
         unit = getattr(self, "unit", None)
         if self.setup.axis_medium == "air":
             if unit is None:
@@ -887,6 +888,13 @@ class LineFitter:
             x = _to_fit_axis(self.setup, x, unit)
         starts, cont, host = _begin(self.setup, x, y, sigma, self.window, self.window_kms)
         rows, info = self.fit_arrays(x, y, sigma, starts=starts, cont=cont, host=host)
+
+        def run(x, y, sigma):
+            starts, cont, host = _begin(self.setup, x, y, sigma, self.window, self.window_kms)
+            rows, info = self.fit_arrays(x, y, sigma, starts=starts, cont=cont, host=host)
+            return rows, info, info
+
+        rows, info, _ = _without_spikes(run, (rows, info, info), x, y, sigma, x_user)
         _note_errors(rows, info, note)
         _rows_to_axis(self.setup, rows, unit)
         for r in rows:
@@ -1246,6 +1254,7 @@ def _apply_error_scale(rows, info, xw, resid) -> float:
     the rows' errors by it and return it; ``info`` keeps the factor and the note :func:`_assess` adds."""
     f, rho1 = _error_scale(xw, resid)
     info["error_scale"] = f
+    info["_resid"] = (xw, resid)  # for the spike check (:func:`_spikes`); taken out before anyone sees info
     if f <= 1.0:
         return f
     for r in rows:
@@ -1260,6 +1269,100 @@ def _apply_error_scale(rows, info, xw, resid) -> float:
         f"residuals of neighbouring pixels are correlated (lag-1 correlation {rho1:.2f}), {why}: line errors scaled up by {f:.2f}"
     )
     return f
+
+
+#: A pixel (or two adjacent ones) this many sigma off the fitted model, whose neighbours are within
+#: a quarter of that, is a spike no line can make (a line spans its resolution element): a cosmic
+#: ray or a bad pixel (common practice, no source). Looked for only when the fit is poor.
+SPIKE_SIGMA = 8.0
+#: At most this many rounds of leaving spikes out and fitting again.
+SPIKE_PASSES = 3
+
+
+def _spikes(info):
+    """(positions on the window axis, signs) of isolated spikes to leave out, or None; pops ``info["_resid"]``.
+
+    Only when the fit is poor (``p_value`` < P_VALUE_MIN). The normalised residuals less their
+    running median over 7 pixels (a spike pulls the least-squares model, shifting its neighbours'
+    residuals alike; the median takes that out): groups of at most two pixels over
+    ``SPIKE_SIGMA`` whose neighbours on either side (other spikes aside) are under 0.4 of the
+    group's peak. A line unmodelled, even one sampled by only two pixels per FWHM, leaves its
+    neighbours higher than that. At most max(5, 2% of the window pixels) of them, else None (that
+    is structure, not spikes).
+    """
+    got = info.pop("_resid", None)
+    if got is None or not info.get("p_value", 1.0) < P_VALUE_MIN:
+        return None
+    xw, r = got
+    if r.size < 7:
+        return None
+    base = np.median(np.lib.stride_tricks.sliding_window_view(np.pad(r, 3, mode="edge"), 7), axis=1)
+    a = np.abs(r - base)
+    hot = a > SPIKE_SIGMA
+    idx = np.flatnonzero(hot)
+    if idx.size == 0:
+        return None
+    out = []
+    for g in np.split(idx, np.flatnonzero(np.diff(idx) > 1) + 1):
+        if g.size > 2:
+            continue
+        near = np.array([k for k in (g[0] - 1, g[-1] + 1) if 0 <= k < a.size and not hot[k]], int)
+        if near.size and np.all(a[near] < 0.4 * a[g].max()):
+            out.append(g)
+    if not out or sum(g.size for g in out) > max(5, 0.02 * a.size):
+        return None
+    idx = np.concatenate(out)
+    return xw[idx], np.sign(r - base)[idx]
+
+
+def _without_spikes(run, first, x, y, sig, x_user):
+    """Leave out isolated spikes of a poor fit and fit again, up to SPIKE_PASSES times; (rows, info, extra).
+
+    ``run(x, y, sig)`` measures and returns (rows, info, extra); ``first`` is its result on all
+    pixels. A pass is undone when, fitted again, the pixels beside what it left out stand out in
+    the same direction (together more than 4 sigma): that was the core of a line sampled by two
+    pixels, not a cosmic ray; then the fit before that pass stands.
+    """
+    rows, info, extra = first
+    at = []
+    for _ in range(SPIKE_PASSES):
+        found = _spikes(info)
+        if found is None:
+            break
+        spikes, signs = found
+        out = np.isin(x, spikes)
+        x2, y2, s2, u2 = x[~out], y[~out], sig[~out], x_user[~out]
+        again = run(x2, y2, s2)
+        xw, r = again[1].get("_resid", (np.empty(0), np.empty(0)))
+        step = _median(np.abs(np.diff(x))) if x.size > 1 else 0.0
+        line = False
+        for p, sg in zip(spikes, signs, strict=True):
+            j = int(np.searchsorted(xw, p))
+            side = [k for k in (j - 1, j) if 0 <= k < xw.size and abs(xw[k] - p) <= 3.5 * step]
+            if len(side) == 2 and sg * float(r[side[0]] + r[side[1]]) > 4.0:
+                line = True
+                break
+        if line:
+            again[1].pop("_resid", None)
+            break
+        at += list(x_user[out])
+        x, y, sig, x_user = x2, y2, s2, u2
+        rows, info, extra = again
+    info.pop("_resid", None)
+    if at:
+        _note_spikes(rows, info, sorted(at))
+    return rows, info, extra
+
+
+def _note_spikes(rows, info, unit_values):
+    """Say which pixels were left out as spikes (``unit_values``: their positions on the user's axis)."""
+    info["spikes"] = [float(v) for v in unit_values]
+    if rows:
+        at = ", ".join(f"{v:.6g}" for v in unit_values[:6]) + (", ..." if len(unit_values) > 6 else "")
+        rows[0]["notes"].append(
+            f"{len(unit_values)} pixel(s) more than {SPIKE_SIGMA:g} sigma off the model and at most 2 pixels wide left out "
+            f"(cosmic rays or bad pixels) at {at}; the fit was repeated without them"
+        )
 
 
 def _continuum_candidates(setup, xw, cw):
@@ -2463,6 +2566,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
             "kind": setup.kind,
             "host": info.get("host", ""),
             "also_fitted": list(info.get("also_fitted", [])),
+            "spikes": list(info.get("spikes", [])),
             "flags": dict(FLAGS),
         }
     )
@@ -2674,13 +2778,18 @@ def measure_lines(
         out = excluded_pixels(spectrum.spectral_axis.value, unit, exclude)
         mask = out if mask is None else (np.asarray(mask, bool) | out)
     x, y, sig, fscale, note = _prepare(spectrum.spectral_axis.value, spectrum.flux.value, spectrum_sigma(spectrum), mask)
+    x_user = x
     x = _to_fit_axis(setup, x, unit)
-    starts, cont0, found = _begin(setup, x, y, sig, window, window_kms)
-    if method == "fast":
-        rows, info = LineFitter(setup, window, window_kms).fit_arrays(x, y, sig, starts=starts, cont=cont0, host=found)
-        extra = info
-    else:
-        rows, info, extra = _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=found)
+
+    def run(x, y, sig):
+        starts, cont0, found = _begin(setup, x, y, sig, window, window_kms)
+        if method == "fast":
+            rows, info = LineFitter(setup, window, window_kms).fit_arrays(x, y, sig, starts=starts, cont=cont0, host=found)
+            return rows, info, info
+        return _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=found)
+
+    rows, info, extra = run(x, y, sig)
+    rows, info, extra = _without_spikes(run, (rows, info, extra), x, y, sig, x_user)
     _note_errors(rows, info, note)
     _rows_to_axis(setup, rows, unit)
     info["medium"] = med
