@@ -418,6 +418,7 @@ def parse_config(data: dict, where: str = "config", base: str | Path | None = No
     from .kinematics import redshift
 
     z_lo, z_hi = float(redshift(beta_max, 0.0)), float(redshift(beta_max, 180.0))
+    z_lo, z_hi = (1 + z_lo) * (1 + host_z) - 1, (1 + z_hi) * (1 + host_z) - 1  # seen from the host's redshift
     z_min = float(_number(where, "[fit]", "z_min", fit.get("z_min", round(z_lo, 6)), lo=-1, lo_open=True))
     z_max = float(_number(where, "[fit]", "z_max", fit.get("z_max", round(z_hi, 6)), lo=-1, lo_open=True))
     if not z_min < z_max:
@@ -827,7 +828,11 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         for ln in _line_dicts(cfg):
             if ln["components"] == 2:
                 pre = slug(ln["label"])
-                pairs.append(tuple(row[f"{pre}_{c}_{q}"] for c in ("approaching", "receding") for q in ("z", "z_err")))
+                # the jets move in the host's frame: 1 + z = (1 + z_host)(1 + z_kin) (the observed
+                # redshifts in the row stay as measured; the host's redshift is taken as exact)
+                hz = 1.0 + float(cfg.get("host_z", 0.0))
+                za, ea, zr, er = (row[f"{pre}_{c}_{q}"] for c in ("approaching", "receding") for q in ("z", "z_err"))
+                pairs.append(((1.0 + za) / hz - 1.0, ea / hz, (1.0 + zr) / hz - 1.0, er / hz))
             if cfg["tie"]:
                 break  # tied lines share one pair
         extra = _object_constraints(cfg, cache, path)

@@ -2548,10 +2548,12 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
     t["centre_err"] = np.array([r["centre_err"] for r in rows]) * axis_unit
     t["z"] = np.array([r["z"] for r in rows])
     t["z_err"] = np.array([r["z_err"] for r in rows])
-    z = t["z"]
+    # radial speed in the host's frame: 1 + z = (1 + host_z)(1 + z_kin) (host_z taken as exact)
+    hz = 1.0 + setup.host_z
+    z = (1.0 + np.asarray(t["z"])) / hz - 1.0
     br = np.asarray(beta_from_redshift(np.clip(z, -0.999999, None)))
     t["v_radial"] = br * C_KMS * kms
-    t["v_radial_err"] = (2 * (1 + z) / (((1 + z) ** 2 + 1) ** 2) * 2 * t["z_err"]) * C_KMS * kms
+    t["v_radial_err"] = (2 * (1 + z) / (((1 + z) ** 2 + 1) ** 2) * 2 * np.asarray(t["z_err"]) / hz) * C_KMS * kms
     t["fwhm"] = np.array([r["fwhm"] for r in rows]) * kms
     t["fwhm_err"] = np.array([r["fwhm_err"] for r in rows]) * kms
     fu = flux_unit * axis_unit
@@ -2576,6 +2578,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
             "profile": setup.profile,
             "kind": setup.kind,
             "host": info.get("host", ""),
+            "host_z": setup.host_z,
             "also_fitted": list(info.get("also_fitted", [])),
             "spikes": list(info.get("spikes", [])),
             "flags": dict(FLAGS),
@@ -2583,7 +2586,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
     )
     t.meta["note"] = (
         "z compares vacuum wavelengths (an air axis is converted for the fit; centre is in the axis's medium, rest in vacuum); "
-        "v_radial is the relativistic radial speed (positive receding)"
+        "v_radial is the relativistic radial speed (positive receding) in the host's frame: z divided by 1 + host_z"
     )
     return t
 
@@ -2726,7 +2729,8 @@ def measure_lines(
         H-alpha) are fitted too, at their component's z and width, when the data need them
         (BIC); they are listed in ``meta["also_fitted"]``.
     host_z : float
-        Redshift of the host (0 for a Galactic source).
+        Redshift of the host (0 for a Galactic source): where host lines sit, and the frame of
+        ``v_radial`` (the observed z is composed, 1 + z = (1 + host_z)(1 + z_kin)).
     exclude : sequence of (Quantity, Quantity), optional
         Ranges of the spectral axis to leave out (a stationary line, a telluric band), in any
         spectral unit, in the spectrum's own medium; added to ``spectrum.mask``. A component
@@ -2740,8 +2744,8 @@ def measure_lines(
     -------
     LineTable (an astropy.table.QTable)
         ``table.plot()`` draws it over the spectrum (data, fitted lines, residuals). Columns ``line``, ``component``, ``rest``, ``centre``, ``centre_err`` (axis unit),
-        ``z``, ``z_err``, ``v_radial``, ``v_radial_err`` (km/s, relativistic radial speed,
-        positive receding), ``fwhm``, ``fwhm_err`` (km/s, as observed: instrumental broadening is
+        ``z``, ``z_err`` (observed), ``v_radial``, ``v_radial_err`` (km/s, relativistic radial
+        speed, positive receding, in the host's frame: 1 + z = (1 + host_z)(1 + z_kin)), ``fwhm``, ``fwhm_err`` (km/s, as observed: instrumental broadening is
         not removed), ``flux``, ``flux_err`` (flux unit x
         axis unit; negative for absorption), ``snr``, ``chi2_reduced``, ``p_value`` (chi-square
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is

@@ -924,3 +924,40 @@ def test_exclude_ranges_in_the_config(tmp_path):
 
     _, t = measure_file(path, cut)
     assert set(t["status"]) == {"ok"}
+
+
+def test_a_jet_pair_behind_a_host_redshift_is_read_in_the_host_frame(tmp_path):
+    # A jet pair (beta 0.2, 60 deg; invented) in a host at z = 0.05 with [host] z = 0.05: the
+    # batch gave beta 0.3595 +- 2e-5, status ok, from the observed redshifts. The host's redshift
+    # composes by product, 1 + z = (1 + z_host)(1 + z_kin) (Davis & Lineweaver 2004, PASA 21, 97;
+    # from memory), and the pair formulas hold for z_kin (Margon 1984, ARA&A 22, 507)
+    from dopplerkit.batch import process_chunk
+
+    zh, b, a = 0.05, 0.2, 60.0
+    za, zr = ((1 + float(dk.redshift(b, t))) * (1 + zh) - 1 for t in (a, 180 - a))
+    kms = u.km / u.s
+    comps = [LineComponent("H-alpha", z=z, fwhm=800 * kms, strength=q) for z, q in ((za, 2.0), (zr, 1.4))]
+    path = tmp_path / "far.fits"
+    write_spectrum(synthesize_spectrum(np.arange(5000.0, 9500.0, 2.0) * u.AA, comps, snr=30, seed=3, resolution=4000), path)
+    base = {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair"}, "spectra": {"medium": "vacuum"}}
+    cfg = parse_config({**base, "host": {"z": zh}})
+    # the default line search follows the host: the redshifts beta_max allows, seen from z_host
+    lo, hi = (1 + float(dk.redshift(0.5, 0.0))) * (1 + zh) - 1, (1 + float(dk.redshift(0.5, 180.0))) * (1 + zh) - 1
+    assert_allclose([cfg.z_min, cfg.z_max], [lo, hi], atol=1e-6)
+    row = process_chunk([str(path)], [None], cfg.as_dict())[0]
+    assert row["status"] == "ok", row["message"]
+    assert abs(row["h_alpha_approaching_z"] - za) < 5 * row["h_alpha_approaching_z_err"]  # the row keeps the observed z
+    assert abs(row["beta"] - b) < 5 * row["beta_err"] and abs(row["viewing_angle"] - a) < 5 * row["viewing_angle_err"]
+    # measure_lines: v_radial in the host's frame (astropy's doppler_redshift as the reference)
+    import warnings
+
+    from dopplerkit.io import read_spectrum
+    from dopplerkit.measure import measure_lines
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t = measure_lines(read_spectrum(path), "H-alpha", components=2, host_z=zh, method="fast")
+    zk = (1 + float(t["z"][0])) / (1 + zh) - 1
+    ref = u.Quantity(zk).to_value(u.km / u.s, equivalencies=u.doppler_redshift())
+    assert_allclose(t["v_radial"][0].to_value(u.km / u.s), ref, rtol=1e-9)
+    assert t.meta["host_z"] == zh
