@@ -19,11 +19,14 @@ from pathlib import Path
 import astropy.units as u
 import numpy as np
 
-KINDS = ("weak", "blend", "steep", "host", "lowsnr", "scaled", "wrongline", "plain", "resampled")
+KINDS = ("weak", "blend", "steep", "host", "lowsnr", "scaled", "wrongline", "plain", "resampled", "stationary", "cosmic")
 # the mix: every hard kind the validation names, beside ordinary spectra (a fifth), as in a survey;
 # "resampled": noise shared by neighbouring pixels (kernel 1/4, 1/2, 1/4) under errors propagated
-# pixel by pixel, as a pipeline that resamples onto a common grid leaves it
-WEIGHTS = (0.12, 0.10, 0.15, 0.14, 0.14, 0.10, 0.05, 0.20, 0.10)
+# pixel by pixel, as a pipeline that resamples onto a common grid leaves it; "stationary": a broad
+# line at rest (a disk or wind, FWHM 1500-3000 km/s) beside the pair, which of the three features
+# are the pair not decided by one spectrum; "cosmic": two single-pixel spikes of 20-40 sigma
+# within 15 Angstrom of each jet line
+WEIGHTS = (0.12, 0.10, 0.15, 0.14, 0.14, 0.10, 0.05, 0.20, 0.10, 0.04, 0.06)
 #: the resampling kernel of the "resampled" kind
 KERNEL = np.array([0.25, 0.5, 0.25])
 
@@ -75,6 +78,12 @@ def _spectrum(c, rng):
             LineComponent("H-beta", z=c["za"], fwhm=c["fwhm"] * kms, strength=c["strength"] / 2.86 * 1.3),
             LineComponent("H-beta", z=c["zr"], fwhm=c["fwhm"] * kms, strength=c["strength"] * c["ratio"] / 2.86 * 1.3),
         ]
+    if c["kind"] == "stationary":
+        fs, q = rng.uniform(1500.0, 3000.0), c["strength"] * rng.uniform(0.5, 2.0)
+        comps += [
+            LineComponent("H-alpha", z=0.0, fwhm=fs * kms, strength=q),
+            LineComponent("H-beta", z=0.0, fwhm=fs * kms, strength=q / 3.5),
+        ]
     if c["kind"] == "host":
         comps += [
             LineComponent("H-alpha", z=0.0, fwhm=150 * kms, strength=1.5),
@@ -90,6 +99,16 @@ def _spectrum(c, rng):
         noise = np.convolve(spec.flux.value - clean, KERNEL, mode="same")
         sigma = spec.uncertainty.array * np.sqrt(np.sum(KERNEL**2))
         spec = Spectrum(spectral_axis=grid, flux=(clean + noise) * spec.flux.unit, uncertainty=StdDevUncertainty(sigma), meta=spec.meta)
+    if c["kind"] == "cosmic":
+        from astropy.nddata import StdDevUncertainty
+        from specutils import Spectrum
+
+        x, y, e = grid.value, spec.flux.value.copy(), spec.uncertainty.array
+        for z in (c["za"], c["zr"]):
+            for off in rng.uniform(-15.0, 15.0, 2):
+                i = min(int(np.searchsorted(x, 6564.61 * (1 + z) + off)), x.size - 1)
+                y[i] += rng.uniform(20.0, 40.0) * e[i]
+        spec = Spectrum(spectral_axis=grid, flux=y * spec.flux.unit, uncertainty=StdDevUncertainty(e), meta=spec.meta)
     return spec
 
 

@@ -2,8 +2,9 @@
 
 Two seeded families of 400 invented jet-pair spectra nobody tuned the fitter for (tests/stress.py):
 weak counter-jets (1/8-1/10), blends near 90 deg, steep power-law continua over 3800-11200
-Angstrom, narrow host lines, S/N 5-8, scaled-integer FITS columns, the wrong line configured, and
-resampled spectra (noise shared by neighbouring pixels under errors propagated pixel by pixel).
+Angstrom, narrow host lines, S/N 5-8, scaled-integer FITS columns, the wrong line configured,
+resampled spectra (noise shared by neighbouring pixels under errors propagated pixel by pixel), a
+broad stationary line beside the pair, and cosmic-ray spikes beside the lines.
 The truth is known, so the checks are statistical (common practice, no source): no ``ok`` row
 more than 5 sigma from the truth, at least 75% of rows ``ok``, and the 1-sigma intervals of the
 ``ok`` rows holding the truth 68% +- 5% of the time (Gaussian errors: 68.3%).
