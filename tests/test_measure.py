@@ -773,6 +773,10 @@ def test_excluded_ranges_convert_between_axes():
     assert not excluded_pixels(nu, u.Hz, None).any()
     with pytest.raises(ValueError, match="exclude: each range"):
         excluded_pixels(nu, u.Hz, [(1 * u.kg, 2 * u.kg)])
+    with pytest.raises(ValueError, match="exclude must be a sequence"):
+        excluded_pixels(nu, u.Hz, 5)
+    with pytest.raises(ValueError, match="exclude: range ends must be finite"):
+        excluded_pixels(nu, u.Hz, [(np.nan * u.AA, 6500 * u.AA)])
     # measure_lines leaves those pixels out: a stationary line there is no rival
     rng = np.random.default_rng(43)
     s, za, zr = _pair_beside_a_stationary_line(rng)

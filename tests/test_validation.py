@@ -234,6 +234,15 @@ def _config_cases():
         for v in (-1.0, -2.0, True, "0", float("nan")):
             with_("fit", key, v, key)
     with_("fit", "z_maximum", 1.0, "z_maximum")
+    for v in (
+        "6470-6660",
+        [["6470 Angstrom"]],
+        [[6470, 6660]],
+        [["6470 kg", "6660 kg"]],
+        [["nan Angstrom", "6660 Angstrom"]],
+        [["1 keV", "x"]],
+    ):
+        with_("fit", "exclude", v, "exclude")
     for v in ("yes", ["Nope"], [1, 2], [], 3):
         with_("host", "lines", v, "lines")
     for v in (True, -1.0, "0", float("nan")):
