@@ -1275,8 +1275,15 @@ def _apply_error_scale(rows, info, xw, resid) -> float:
 #: a quarter of that, is a spike no line can make (a line spans its resolution element): a cosmic
 #: ray or a bad pixel (common practice, no source). Looked for only when the fit is poor.
 SPIKE_SIGMA = 8.0
+#: ... and this many times the scatter of those residuals within 7 pixels (1.4826 x their median
+#: absolute value, other spikes aside).
+SPIKE_SCATTER = 6.0
 #: At most this many rounds of leaving spikes out and fitting again.
 SPIKE_PASSES = 3
+#: Fitted again without a spike, the pixels within 6 of it must fit (mean squared normalised
+#: residual under this); structure left there means the "spike" was part of a misfit, not a cosmic
+#: ray, and it is put back (chi-square of 6-12 pixels at 4 per pixel: probability < 1e-4).
+SPIKE_LOCAL_CHI2 = 4.0
 
 
 def _spikes(info):
@@ -1285,9 +1292,10 @@ def _spikes(info):
     Only when the fit is poor (``p_value`` < P_VALUE_MIN). The normalised residuals less their
     running median over 7 pixels (a spike pulls the least-squares model, shifting its neighbours'
     residuals alike; the median takes that out): groups of at most two pixels over
-    ``SPIKE_SIGMA`` whose neighbours on either side (other spikes aside) are under 0.4 of the
-    group's peak. A line unmodelled, even one sampled by only two pixels per FWHM, leaves its
-    neighbours higher than that. At most max(5, 2% of the window pixels) of them, else None (that
+    ``SPIKE_SIGMA`` and ``SPIKE_SCATTER`` times the local scatter of those values, whose
+    neighbours on either side (other spikes aside) are under 0.4 of the group's peak. A line
+    unmodelled, even one sampled by only two pixels per FWHM, leaves its neighbours higher than
+    that; a misfit leaves a scatter that hides single pixels. At most max(5, 2% of the window pixels) of them, else None (that
     is structure, not spikes).
     """
     got = info.pop("_resid", None)
@@ -1307,7 +1315,14 @@ def _spikes(info):
         if g.size > 2:
             continue
         near = np.array([k for k in (g[0] - 1, g[-1] + 1) if 0 <= k < a.size and not hot[k]], int)
-        if near.size and np.all(a[near] < 0.4 * a[g].max()):
+        if not (near.size and np.all(a[near] < 0.4 * a[g].max())):
+            continue
+        # and far above the residuals' own scatter there (a misfit's structure plus noise can
+        # reach 8 sigma in one pixel; a cosmic ray stands far above it)
+        around = np.r_[max(g[0] - 7, 0) : min(g[-1] + 8, a.size)]
+        around = around[~hot[around]]
+        scatter = 1.4826 * float(np.median(a[around])) if around.size >= 5 else np.inf
+        if a[g].max() > SPIKE_SCATTER * scatter:
             out.append(g)
     if not out or sum(g.size for g in out) > max(5, 0.02 * a.size):
         return None
@@ -1320,8 +1335,9 @@ def _without_spikes(run, first, x, y, sig, x_user):
 
     ``run(x, y, sig)`` measures and returns (rows, info, extra); ``first`` is its result on all
     pixels. A pass is undone when, fitted again, the pixels beside what it left out stand out in
-    the same direction (together more than 4 sigma): that was the core of a line sampled by two
-    pixels, not a cosmic ray; then the fit before that pass stands.
+    the same direction (together more than 4 sigma: the core of a line sampled by two pixels), or
+    the pixels within 6 of it still do not fit (``SPIKE_LOCAL_CHI2``: a misfit, not a cosmic
+    ray); then the fit before that pass stands.
     """
     rows, info, extra = first
     at = []
@@ -1339,7 +1355,10 @@ def _without_spikes(run, first, x, y, sig, x_user):
         for p, sg in zip(spikes, signs, strict=True):
             j = int(np.searchsorted(xw, p))
             side = [k for k in (j - 1, j) if 0 <= k < xw.size and abs(xw[k] - p) <= 3.5 * step]
-            if len(side) == 2 and sg * float(r[side[0]] + r[side[1]]) > 4.0:
+            around = np.abs(xw - p) <= 6.5 * step
+            if (len(side) == 2 and sg * float(r[side[0]] + r[side[1]]) > 4.0) or (
+                around.sum() >= 5 and float(np.mean(r[around] ** 2)) > SPIKE_LOCAL_CHI2
+            ):
                 line = True
                 break
         if line:
