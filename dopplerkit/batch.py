@@ -555,7 +555,7 @@ def _formats(paths) -> list[str | None]:
 # ---------------------------------------------------------------------------
 # Worker side
 # ---------------------------------------------------------------------------
-def jet_pair_closed_form(za, zr, ea, er):
+def jet_pair_closed_form(za, zr, ea, er, rho=0.0):
     """beta, beta_err, theta (deg), theta_err (deg) of a jet pair, with first-order error propagation.
 
     Gamma = (2 + z_a + z_r)/2, cos theta = (z_r - z_a)/(2 Gamma beta) (Margon 1984, ARA&A 22,
@@ -568,6 +568,9 @@ def jet_pair_closed_form(za, zr, ea, er):
         Redshifts of the approaching and receding jet.
     ea, er : float
         Their 1-sigma errors.
+    rho : float
+        Correlation coefficient of the two errors (fitted in one spectrum, overlapping lines are
+        correlated); 0 treats them as independent.
 
     Returns
     -------
@@ -586,11 +589,13 @@ def jet_pair_closed_form(za, zr, ea, er):
         return b, math.nan, math.nan, math.nan
     th = math.degrees(math.acos(c))
     db = 1.0 / (2.0 * g**3 * b)
-    beta_err = math.hypot(db * ea, db * er)
+    cov = rho * ea * er
+    # var f = f_a^2 e_a^2 + f_r^2 e_r^2 + 2 f_a f_r cov (first order)
+    beta_err = abs(db) * math.sqrt(max(ea * ea + er * er + 2 * cov, 0.0))
     dca = -1.0 / (2 * s) - d * g / (4 * s**3)
     dcr = 1.0 / (2 * s) - d * g / (4 * s**3)
     sin_t = math.sqrt(max(1.0 - c * c, 1e-300))
-    th_err = math.degrees(math.hypot(dca * ea, dcr * er) / sin_t)
+    th_err = math.degrees(math.sqrt(max((dca * ea) ** 2 + (dcr * er) ** 2 + 2 * dca * dcr * cov, 0.0)) / sin_t)
     return b, beta_err, th, th_err
 
 
@@ -810,6 +815,10 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         pvals.append(info["p_value"])
         conts.append(info["continuum"])
         scales.append(info.get("error_scale", 1.0))
+        corr = (info.get("z_corr") or [[]])[0]
+        if len(corr) == 2:  # a pair's z errors are correlated when its lines overlap
+            for ln in _lines:
+                row[f"{slug(ln['label'])}_z_corr"] = float(corr[0][1])
         for r in rows:
             pre = f"{slug(r['line'])}_{r['component']}"
             target = canon.get(slug(r["line"]), arr.axis_unit)
@@ -832,13 +841,14 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
                 # redshifts in the row stay as measured; the host's redshift is taken as exact)
                 hz = 1.0 + float(cfg.get("host_z", 0.0))
                 za, ea, zr, er = (row[f"{pre}_{c}_{q}"] for c in ("approaching", "receding") for q in ("z", "z_err"))
-                pairs.append(((1.0 + za) / hz - 1.0, ea / hz, (1.0 + zr) / hz - 1.0, er / hz))
+                rho = row.get(f"{pre}_z_corr", 0.0)
+                pairs.append(((1.0 + za) / hz - 1.0, ea / hz, (1.0 + zr) / hz - 1.0, er / hz, rho if np.isfinite(rho) else 0.0))
             if cfg["tie"]:
                 break  # tied lines share one pair
         extra = _object_constraints(cfg, cache, path)
         if len(pairs) == 1 and not extra:
-            za, ea, zr, er = pairs[0]
-            b, be, th, te = jet_pair_closed_form(za, zr, ea, er)
+            za, ea, zr, er, rho = pairs[0]
+            b, be, th, te = jet_pair_closed_form(za, zr, ea, er, rho)
         elif extra:
             import warnings
 
@@ -846,7 +856,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
 
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")  # the notes below carry what needs care
-                f = fit_constraints(z_pairs=[(p[0], p[2], p[1], p[3]) for p in pairs], **extra)
+                f = fit_constraints(z_pairs=[(p[0], p[2], p[1], p[3], p[4]) for p in pairs], **extra)
             b, be, th, te = f.beta, f.beta_err, f.value("viewing_angle"), f.error("viewing_angle")
             row["constraints"] = ", ".join(k.replace("_", " ") for k in ("apparent_speeds", "doppler_factors", "limits") if extra.get(k))
             notes += [n for n in f.notes if n not in notes and "close to c" not in n]
@@ -855,7 +865,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
         else:
             from .fitting import fit_constraints
 
-            f = fit_constraints(z_pairs=[(p[0], p[2], p[1], p[3]) for p in pairs])
+            f = fit_constraints(z_pairs=[(p[0], p[2], p[1], p[3], p[4]) for p in pairs])
             b, be, th, te = f.beta, f.beta_err, f.value("viewing_angle"), f.error("viewing_angle")
         if not np.isfinite(b) or not np.isfinite(th):
             flags.add("unphysical_pair")

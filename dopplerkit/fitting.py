@@ -460,7 +460,9 @@ def _jet_pair_model(eta, theta_deg, relativistic=True):
     return _pair_z(eta, np.cos(theta_deg * _DEG), relativistic)
 
 
-def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *, relativistic: bool = True, scale_errors: bool = False):
+def fit_jet_pair(
+    z_approaching, z_receding, z_approaching_err, z_receding_err, *, z_corr=0.0, relativistic: bool = True, scale_errors: bool = False
+):
     """Fit beta and viewing angle to the redshifts of a jet/counter-jet pair.
 
     Parameters
@@ -469,6 +471,10 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
         Measured redshifts of the approaching and the receding jet (dimensionless).
     z_approaching_err, z_receding_err : float or array
         Their 1-sigma uncertainties (> 0).
+    z_corr : float or array
+        Correlation coefficient of the two redshifts' errors, in (-1, 1): both fitted in one
+        spectrum, overlapping lines are correlated (``measure_lines`` gives it in
+        ``meta["z_corr"]``). 0 (the default) treats them as independent.
     relativistic : bool
         False fits the Galilean reading z = -/+ beta cos theta instead (no transverse term).
     scale_errors : bool
@@ -490,7 +496,7 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
     (``scale_covar=False``). An unphysical pair leaves a residual and puts beta at 0 or the
     angle at a bound; the notes say so. Model: Margon 1984, ARA&A 22, 507.
     """
-    za, zr, ea, er = np.broadcast_arrays(
+    za, zr, ea, er, rho = np.broadcast_arrays(
         *(
             np.asarray(_dimensionless(v, n), float)
             for v, n in (
@@ -498,9 +504,13 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
                 (z_receding, "z_receding"),
                 (z_approaching_err, "z_approaching_err"),
                 (z_receding_err, "z_receding_err"),
+                (z_corr, "z_corr"),
             )
         )
     )
+    bad = ~(np.abs(rho) < 1)
+    if np.any(bad):
+        raise ValueError(f"z_corr must be a correlation coefficient in (-1, 1), got {float(rho.ravel()[np.flatnonzero(bad)[0]])!r}")
     for name, arr in (("z_approaching_err", ea), ("z_receding_err", er)):
         if np.any(~(arr > 0)) or np.any(~np.isfinite(arr)):
             raise ValueError(
@@ -511,16 +521,16 @@ def fit_jet_pair(z_approaching, z_receding, z_approaching_err, z_receding_err, *
         if np.any(bad):
             raise ValueError(f"{name} must be a finite redshift > -1, got {float(arr.ravel()[np.flatnonzero(bad)[0]])!r}")
     if za.ndim == 0:
-        return _fit_one_pair(float(za), float(zr), float(ea), float(er), relativistic, scale_errors)
+        return _fit_one_pair(float(za), float(zr), float(ea), float(er), relativistic, scale_errors, float(rho))
     fits = KinematicFits(
-        _fit_one_pair(float(a), float(r), float(e1), float(e2), relativistic, scale_errors)
-        for a, r, e1, e2 in zip(za.ravel(), zr.ravel(), ea.ravel(), er.ravel(), strict=True)
+        _fit_one_pair(float(a), float(r), float(e1), float(e2), relativistic, scale_errors, float(c))
+        for a, r, e1, e2, c in zip(za.ravel(), zr.ravel(), ea.ravel(), er.ravel(), rho.ravel(), strict=True)
     )
     fits.shape = za.shape
     return fits
 
 
-def _fit_one_pair(za, zr, ea, er, relativistic=True, scale_errors=False):
+def _fit_one_pair(za, zr, ea, er, relativistic=True, scale_errors=False, rho=0.0):
     import lmfit
 
     with warnings.catch_warnings():
@@ -540,10 +550,12 @@ def _fit_one_pair(za, zr, ea, er, relativistic=True, scale_errors=False):
     params.add("viewing_angle", value=float(np.clip(th0, 1e-6, 180 - 1e-6)), min=0.0, max=180.0)
     data = np.array([za, zr])
     err = np.array([ea, er])
+    # whitened by the Cholesky factor of the errors' covariance (independent when rho = 0)
+    chol = np.linalg.cholesky(np.array([[ea * ea, rho * ea * er], [rho * ea * er, er * er]]))
 
     def residual(p):
         m = _jet_pair_model(p["eta"].value, p["viewing_angle"].value, relativistic)
-        return (np.array(m) - data) / err
+        return np.linalg.solve(chol, np.array(m) - data)
 
     res = _minimize(residual, params)
     notes = []
@@ -978,8 +990,9 @@ def fit_constraints(
 
     Parameters
     ----------
-    z_pairs : sequence of (z_a, z_r, z_a_err, z_r_err)
-        Jet/counter-jet redshift pairs.
+    z_pairs : sequence of (z_a, z_r, z_a_err, z_r_err) or (z_a, z_r, z_a_err, z_r_err, corr)
+        Jet/counter-jet redshift pairs; ``corr`` is the correlation of the two errors, in (-1, 1)
+        (fitted in one spectrum, overlapping lines are correlated; 0 if left out).
     single_z : sequence of (z, z_err, jet)
         Single-jet redshifts; ``jet`` is "approaching" (at theta) or "receding" (at 180 - theta).
     proper_motions : sequence of (mu_a, mu_a_err, mu_r, mu_r_err)
@@ -1043,15 +1056,19 @@ def fit_constraints(
 
     zp = []
     for i, pair in enumerate(z_pairs):
-        if len(pair) != 4:
-            raise ValueError(f"z_pairs[{i}] must be (z_a, z_r, z_a_err, z_r_err), got {pair!r}")
-        za, zr, ea, er = pair
+        if len(pair) not in (4, 5):
+            raise ValueError(f"z_pairs[{i}] must be (z_a, z_r, z_a_err, z_r_err) or with the errors' correlation last, got {pair!r}")
+        za, zr, ea, er = pair[:4]
+        rho = _measured(pair[4], f"z_pairs[{i}] correlation") if len(pair) == 5 else 0.0
+        if not abs(rho) < 1:
+            raise ValueError(f"z_pairs[{i}] correlation must be in (-1, 1), got {rho!r}")
         zp.append(
             (
                 redshift_value(za, f"z_pairs[{i}] z_a"),
                 redshift_value(zr, f"z_pairs[{i}] z_r"),
                 _measured(ea, f"z_pairs[{i}] z_a_err", positive=True),
                 _measured(er, f"z_pairs[{i}] z_r_err", positive=True),
+                rho,
             )
         )
     sz = []
@@ -1124,8 +1141,10 @@ def fit_constraints(
         b = np.tanh(eta)
         omb = 2.0 / (np.exp(2.0 * eta) + 1.0)  # 1 - tanh(eta), exact near c
         r = []
-        for za, zr, ea, er in zp:
-            r += [(model_z(eta, th, 1) - za) / ea, (model_z(eta, th, -1) - zr) / er]
+        for za, zr, ea, er, rho in zp:
+            # whitened by the Cholesky factor of the pair's error covariance
+            wa = (model_z(eta, th, 1) - za) / ea
+            r += [wa, ((model_z(eta, th, -1) - zr) / er - rho * wa) / np.sqrt(1.0 - rho * rho)]
         for z, e, j in sz:
             r.append((model_z(eta, th, 1 if j == "approaching" else -1) - z) / e)
         if pm:

@@ -1085,12 +1085,44 @@ class LineFitter:
             nh = len(host.names)
             info["host"] = _host_note(host, p[-nh:] / (f * err[-nh:]))
         info["also_fitted"] = extra
+        info["z_corr"] = self._z_corr(p, xw, sw, B, lo, hi)
         _check_identification(s, rows, x, y, sigma * f, host=host, also=extra)
         _check_swaps(s, rows, x, y, sigma, cont, host, self.window, self.window_kms, f * f)
         _check_rivals(s, rows, x, y, sigma * f, cont if cont is not None else _median_continuum(x, y), host)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
+
+    def _z_corr(self, p, xw, sw, B, lo, hi) -> list:
+        """Per group, the correlation matrix of the components' z at the fit (NaN where one is held).
+
+        From the inverse of J^T J with its columns normalised first (the parameters differ in
+        scale by many orders); the error scale multiplies every error alike and leaves it as is.
+        """
+        s = self.setup
+        free = lo < hi
+        J = self._model(p, xw, B, jac=True)[1][:, free] / sw[:, None]
+        norms = np.sqrt(np.sum(J * J, axis=0))
+        norms[norms == 0] = 1.0
+        Js = J / norms
+        try:
+            cov = np.linalg.inv(Js.T @ Js) / np.outer(norms, norms)
+        except np.linalg.LinAlgError:
+            cov = None
+        where = {int(j): n for n, j in enumerate(np.flatnonzero(free))}
+        out, first = [], 0
+        for grp in s.groups:
+            per = 2 + len(grp)
+            zi = [where.get(first + k * per) for k in range(s.components)]
+            corr = np.full((s.components, s.components), np.nan)
+            if cov is not None:
+                for a, ia in enumerate(zi):
+                    for b, ib in enumerate(zi):
+                        if ia is not None and ib is not None:
+                            corr[a, b] = cov[ia, ib] / np.sqrt(cov[ia, ia] * cov[ib, ib])
+            out.append(corr.tolist())
+            first += s.components * per
+        return out
 
     def _detection(self, rows, p, xw, yw, sw, B, chi2, lo, hi, x, scale2=1.0):
         """Refit without the weakest component of each group; flag it ``not_detected`` unless the data need it.
@@ -2471,12 +2503,30 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
         pars = [result.params[f"cont_c{i}"] for i in range(nb - nh, nb)]
         info["host"] = _host_note(host, [q.value / (f * q.stderr) if q.stderr else np.nan for q in pars])
     info["also_fitted"] = also
+    info["z_corr"] = _lmfit_z_corr(setup, result)
     _check_identification(setup, rows, x, y, sig * f, host=host, also=also)
     _check_swaps(setup, rows, x, y, sig, cont0, host, window, window_kms, f * f)
     _check_rivals(setup, rows, x, y, sig * f, cont0, host)
     _check_edges(rows, x)
     _assess(setup, rows, info)
     return rows, info, result
+
+
+def _lmfit_z_corr(setup, result) -> list:
+    """Per group, the correlation matrix of the components' z from lmfit's covariance (NaN where unknown)."""
+    names = list(result.var_names or [])
+    covar = result.covar
+    out = []
+    for gi in range(len(setup.groups)):
+        zi = [names.index(f"z_g{gi}_{k}") if f"z_g{gi}_{k}" in names else None for k in range(setup.components)]
+        corr = np.full((setup.components, setup.components), np.nan)
+        if covar is not None:
+            for a, ia in enumerate(zi):
+                for b, ib in enumerate(zi):
+                    if ia is not None and ib is not None:
+                        corr[a, b] = covar[ia, ib] / np.sqrt(covar[ia, ia] * covar[ib, ib])
+        out.append(corr.tolist())
+    return out
 
 
 def _lmfit_rows(setup, result, dx):
@@ -2598,6 +2648,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
             "kind": setup.kind,
             "host": info.get("host", ""),
             "host_z": setup.host_z,
+            "z_corr": info.get("z_corr", []),
             "also_fitted": list(info.get("also_fitted", [])),
             "spikes": list(info.get("spikes", [])),
             "flags": dict(FLAGS),

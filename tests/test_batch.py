@@ -288,6 +288,29 @@ def test_closed_form_matches_lmfit():
         f = fit_jet_pair(za, zr, 1e-3, 2e-3)
         assert_allclose([b, th], [f.beta, f.value("viewing_angle")], rtol=1e-7)
         assert_allclose([be, te], [f.beta_err, f.error("viewing_angle")], rtol=1e-3)
+        # with correlated errors (two overlapping lines fitted together): the same, both ways
+        for rho in (-0.6, 0.85):
+            b, be, th, te = jet_pair_closed_form(za, zr, 1e-3, 2e-3, rho)
+            f = fit_jet_pair(za, zr, 1e-3, 2e-3, z_corr=rho)
+            g = dk.fitting.fit_constraints(z_pairs=[(za, zr, 1e-3, 2e-3, rho)])
+            assert_allclose([be, te], [f.beta_err, f.error("viewing_angle")], rtol=1e-3)
+            assert_allclose([be, te], [g.beta_err, g.error("viewing_angle")], rtol=1e-3)
+
+
+def test_correlated_pair_errors_propagate_as_sampled():
+    # First-order propagation with the covariance term, var f = f_a^2 s_a^2 + f_r^2 s_r^2 +
+    # 2 f_a f_r rho s_a s_r (Bevington & Robinson 2003, Data Reduction and Error Analysis, eq.
+    # 3.13; from memory), against the scatter of beta and angle over sampled correlated pairs
+    rng = np.random.default_rng(47)
+    za, zr = float(dk.redshift(0.03, 87.0)), float(dk.redshift(0.03, 93.0))
+    ea, er = 4e-5, 5e-5
+    for rho in (0.0, 0.9, -0.7):
+        cov = [[ea * ea, rho * ea * er], [rho * ea * er, er * er]]
+        s = rng.multivariate_normal([za, zr], cov, size=20000)
+        out = np.array([jet_pair_closed_form(a, r, ea, er, rho) for a, r in s])
+        _, be, _, te = jet_pair_closed_form(za, zr, ea, er, rho)
+        assert_allclose(np.std(out[:, 0]), be, rtol=0.03)
+        assert_allclose(np.std(out[:, 2]), te, rtol=0.03)
 
 
 def _free_port():

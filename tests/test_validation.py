@@ -120,6 +120,10 @@ def _api_cases():
         a = list(jp)
         a[i] = NAN
         cases.append(pytest.param(F.fit_jet_pair, a, {}, name, False, id=f"fit_jet_pair-{name}-nan"))
+    for b in [1.0, -1.0, 1.5, NAN, True, "x"]:
+        cases.append(pytest.param(F.fit_jet_pair, jp, {"z_corr": b}, "z_corr", False, id=f"fit_jet_pair-z_corr-{b!r}"))
+        pair = (-0.1045, 0.1648, 1e-3, 1e-3, b)
+        cases.append(pytest.param(F.fit_constraints, [], {"z_pairs": [pair]}, "z_pairs", False, id=f"fit_constraints-z_pairs-corr-{b!r}"))
     for b in [
         (NAN, 0.1, 1e-3, 1e-3),
         (-0.1, 0.1, 0.0, 1e-3),
