@@ -1631,13 +1631,14 @@ def _others(rows):
     return out
 
 
-def _usable(r) -> bool:
+def _usable(r, absorption_too=False) -> bool:
+    """Every value of the row finite, and its flux positive (an emission line; or non-zero with ``absorption_too``)."""
     return bool(
         np.isfinite(r["z"])
         and np.isfinite(r["z_err"])
         and np.isfinite(r["fwhm"])
         and np.isfinite(r["flux"])
-        and r["flux"] > 0
+        and (abs(r["flux"]) > 0 if absorption_too else r["flux"] > 0)
         and np.isfinite(r["flux_err"])
         and np.isfinite(r["centre_err"])
     )
@@ -1859,7 +1860,7 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
     companions = []  # lines of the same gas at a fitted z, not fitted: (centre, FWHM, largest plausible flux)
     ratio = {n: q for n, _, q in setup.same_gas}
     for r in rows:
-        if not _usable(r) or not np.isfinite(r["centre"]):
+        if not _usable(r, absorption_too=True) or not np.isfinite(r["centre"]):
             continue
         sg = abs(r["centre"]) * r["fwhm"] / (C_KMS * _FWHM_GAUSS)
         i0, i1 = np.searchsorted(x, [r["centre"] - 9 * sg, r["centre"] + 9 * sg])  # zero beyond 9 sigma
@@ -1880,7 +1881,7 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
     resid_rel = sign * (y - cont - model) / np.maximum(np.abs(cont), 1e-300)
     for gi, grp in enumerate(setup.groups):
         mine = [r for r in rows if r["group"] == gi]
-        seen = [r for r in mine if "not_detected" not in r["flags"] and _usable(r)]
+        seen = [r for r in mine if "not_detected" not in r["flags"] and _usable(r, absorption_too=True)]
         if not seen:
             continue
         zs = sorted({(r["k"], r["z"]) for r in mine})
