@@ -1802,12 +1802,15 @@ def _check_swaps(setup, rows, x, y, sig, cont, host, window, window_kms, scale2=
 RIVAL_FRACTION = 0.3
 
 
-def _rival_candidates(setup, grp, x, resid_rel, n_candidates=6):
-    """Peaks of a z scan of ``resid_rel`` (residual / continuum) summed over the lines of ``grp``: [(z, fwhm_kms)]."""
+def _rival_candidates(setup, grp, x, resid_rel, noise_rel, n_candidates=6):
+    """Peaks of a z scan of ``resid_rel`` (residual / continuum) summed over the lines of ``grp``: [(z, fwhm_kms)].
+
+    ``noise_rel``: the typical noise of ``resid_rel`` per pixel (sigma / continuum)."""
     rest = setup.rest[grp]
-    dx = _median(np.diff(x))
+    dx = (x[-1] - x[0]) / max(x.size - 1, 1)  # the mean step (a median costs more than it is worth here)
     k = np.exp(-0.5 * (np.arange(-6, 7) / 2.0) ** 2)
-    rs = np.convolve(resid_rel, k / k.sum(), mode="same")
+    k /= k.sum()
+    rs = np.convolve(resid_rel, k, mode="same")
     lo_z = max(setup.z_range[0], (x[0] / rest.max() - 1) if setup.wavelike else (rest.min() / x[-1] - 1))
     hi_z = min(setup.z_range[1], (x[-1] / rest.min() - 1) if setup.wavelike else (rest.max() / x[0] - 1))
     step = dx / x[x.size // 2] / 2
@@ -1829,7 +1832,11 @@ def _rival_candidates(setup, grp, x, resid_rel, n_candidates=6):
             pos = r * (1 + zg) if setup.wavelike else r / (1 + zg)
             inside = (pos >= x[0]) & (pos <= x[-1])
             score += np.where(inside, np.interp(pos, x, rs), 0.0)
-    peaks = np.flatnonzero((score[1:-1] > score[:-2]) & (score[1:-1] >= score[2:]) & (score[1:-1] > 0)) + 1
+    # peaks clear of the scan's own noise (twice it), the rest are not measured: a feature of the
+    # kernel's width seen at 5 sigma in flux stands further out; one much broader stands out less
+    # (a rival 10 times the kernel's width is seen from about 8 sigma in flux)
+    floor = 2.0 * noise_rel * math.sqrt(float(np.sum(k * k)) * rest.size)
+    peaks = np.flatnonzero((score[1:-1] > score[:-2]) & (score[1:-1] >= score[2:]) & (score[1:-1] > max(floor, 0.0))) + 1
     out = []
     for i in peaks[np.argsort(score[peaks])[::-1]][:n_candidates]:
         below = score < 0.5 * score[i]
@@ -1878,7 +1885,9 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
         hmu = _position(setup, np.array([q for _, q in setup.host]), setup.host_z)
     if host is not None:
         explained += host.others(setup.wavelike)
-    resid_rel = sign * (y - cont - model) / np.maximum(np.abs(cont), 1e-300)
+    scale = 1.0 / np.maximum(np.abs(cont), 1e-300)
+    resid_rel = sign * (y - cont - model) * scale
+    noise_rel = float(np.mean(sig * scale))
     for gi, grp in enumerate(setup.groups):
         mine = [r for r in rows if r["group"] == gi]
         seen = [r for r in mine if "not_detected" not in r["flags"] and _usable(r, absorption_too=True)]
@@ -1899,7 +1908,7 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
             f = sign * got[0] - sum(fmax for c, fw, fmax in companions if abs(c - mu) < max(fw, _FWHM_GAUSS * sg))
             return f, got[1]
 
-        for zc, fc in _rival_candidates(setup, list(grp), x, resid_rel):
+        for zc, fc in _rival_candidates(setup, list(grp), x, resid_rel, noise_rel):
             if setup.jet_pair:
                 zk = [z for _, z in zs]
                 if not any((1 + min(zc, zk[1 - j])) * (1 + max(zc, zk[1 - j])) >= 1 - 3e-3 for j in range(2)):
