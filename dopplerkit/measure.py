@@ -1113,14 +1113,7 @@ class LineFitter:
         out, first = [], 0
         for grp in s.groups:
             per = 2 + len(grp)
-            zi = [where.get(first + k * per) for k in range(s.components)]
-            corr = np.full((s.components, s.components), np.nan)
-            if cov is not None:
-                for a, ia in enumerate(zi):
-                    for b, ib in enumerate(zi):
-                        if ia is not None and ib is not None:
-                            corr[a, b] = cov[ia, ib] / np.sqrt(cov[ia, ia] * cov[ib, ib])
-            out.append(corr.tolist())
+            out.append(_z_corr_of(cov, [where.get(first + k * per) for k in range(s.components)]))
             first += s.components * per
         return out
 
@@ -2522,21 +2515,24 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
     return rows, info, result
 
 
+def _z_corr_of(cov, zi) -> list:
+    """The correlation matrix (nested lists) of the parameters at indices ``zi`` of ``cov``; NaN for a None index or no ``cov``."""
+    corr = np.full((len(zi), len(zi)), np.nan)
+    if cov is not None:
+        for a, ia in enumerate(zi):
+            for b, ib in enumerate(zi):
+                if ia is not None and ib is not None:
+                    corr[a, b] = cov[ia, ib] / np.sqrt(cov[ia, ia] * cov[ib, ib])
+    return corr.tolist()
+
+
 def _lmfit_z_corr(setup, result) -> list:
     """Per group, the correlation matrix of the components' z from lmfit's covariance (NaN where unknown)."""
     names = list(result.var_names or [])
-    covar = result.covar
-    out = []
-    for gi in range(len(setup.groups)):
-        zi = [names.index(f"z_g{gi}_{k}") if f"z_g{gi}_{k}" in names else None for k in range(setup.components)]
-        corr = np.full((setup.components, setup.components), np.nan)
-        if covar is not None:
-            for a, ia in enumerate(zi):
-                for b, ib in enumerate(zi):
-                    if ia is not None and ib is not None:
-                        corr[a, b] = covar[ia, ib] / np.sqrt(covar[ia, ia] * covar[ib, ib])
-        out.append(corr.tolist())
-    return out
+    return [
+        _z_corr_of(result.covar, [names.index(f"z_g{gi}_{k}") if f"z_g{gi}_{k}" in names else None for k in range(setup.components)])
+        for gi in range(len(setup.groups))
+    ]
 
 
 def _lmfit_rows(setup, result, dx):

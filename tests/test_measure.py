@@ -880,3 +880,19 @@ def test_an_absorber_at_rest_beside_an_outflow_is_a_rival():
         # an outflow is blueshifted: a z range that says so leaves the absorber at rest out
         t = measure_lines(s, ["Fe XXVI Ly-alpha", "Fe XXV He-alpha w"], tie=True, kind="absorption", z_range=(-0.3, -0.02), method="fast")
         assert "rival" not in ",".join(t["flags"]), list(t["message"])
+
+
+def test_overlapping_pair_z_errors_are_correlated_in_both_engines():
+    # A pair 6 deg from transverse with lines 900 km/s wide overlaps: the two z errors are strongly
+    # correlated (the fit's covariance), and both engines say so alike (code path, no source)
+    s, _, _ = jet_pair_spectrum(0.03, 87.0, fwhm=900.0, snr=40.0, seed=2)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        a = measure_lines(s, "H-alpha", components=2, method="fast").meta["z_corr"][0]
+        b = measure_lines(s, "H-alpha", components=2, method="lmfit").meta["z_corr"][0]
+    assert a[0][0] == pytest.approx(1.0) and a[0][1] == pytest.approx(a[1][0])
+    assert a[0][1] > 0.5
+    assert a[0][1] == pytest.approx(b[0][1], abs=1e-3)
+    # well apart, hardly correlated
+    s, _, _ = jet_pair_spectrum(0.2, 40.0, seed=3)
+    assert abs(measure_lines(s, "H-alpha", components=2, method="fast").meta["z_corr"][0][0][1]) < 0.2
