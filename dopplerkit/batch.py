@@ -154,19 +154,16 @@ class BatchConfig:
 
     def as_dict(self) -> dict:
         """The configuration as a plain dict (what workers receive)."""
-        return {
-            k: (
-                list(map(dict, v))
-                if k in ("lines", "constraints")
-                else [list(p) for p in v]
-                if k == "exclude"
-                else list(v)
-                if isinstance(v, tuple)
-                else v
-            )
-            for k, v in self.__dict__.items()
-            if not (k == "exclude" and not v)  # absent when empty: the hash of earlier configurations stays
-        }
+        out = {}
+        for k, v in self.__dict__.items():
+            if k in ("lines", "constraints"):
+                out[k] = list(map(dict, v))
+            elif k == "exclude":
+                if v:  # absent when empty: the hash of earlier configurations stays
+                    out[k] = [list(p) for p in v]
+            else:
+                out[k] = list(v) if isinstance(v, tuple) else v
+        return out
 
     @property
     def hash(self) -> str:
