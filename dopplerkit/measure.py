@@ -1296,9 +1296,10 @@ def _apply_error_scale(rows, info, xw, resid) -> float:
     return f
 
 
-#: A pixel (or two adjacent ones) this many sigma off the fitted model, whose neighbours are within
-#: a quarter of that, is a spike no line can make (a line spans its resolution element): a cosmic
-#: ray or a bad pixel (common practice, no source). Looked for only when the fit is poor.
+#: A pixel (or two adjacent ones) this many sigma off the fitted model (less the running median of
+#: the residuals), whose neighbours are under 0.4 of that, is a spike no line can make (a line
+#: spans its resolution element): a cosmic ray or a bad pixel (common practice, no source). Looked
+#: for only when the fit is poor.
 SPIKE_SIGMA = 8.0
 #: ... and this many times the scatter of those residuals within 7 pixels (1.4826 x their median
 #: absolute value, other spikes aside).
@@ -1320,8 +1321,8 @@ def _spikes(info):
     ``SPIKE_SIGMA`` and ``SPIKE_SCATTER`` times the local scatter of those values, whose
     neighbours on either side (other spikes aside) are under 0.4 of the group's peak. A line
     unmodelled, even one sampled by only two pixels per FWHM, leaves its neighbours higher than
-    that; a misfit leaves a scatter that hides single pixels. At most max(5, 2% of the window pixels) of them, else None (that
-    is structure, not spikes).
+    that; a misfit leaves a scatter that hides single pixels. At most max(5, 2% of the window
+    pixels) of them, else None (that is structure, not spikes).
     """
     got = info.pop("_resid", None)
     if got is None or not info.get("p_value", 1.0) < P_VALUE_MIN:
