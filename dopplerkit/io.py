@@ -498,6 +498,9 @@ def read_arrays(
 
 
 def _read_wcs1d(hdul, path, spectral_unit, flux_unit):
+    """A 1-D image spectrum: the axis from its WCS (IRAF's DC-FLAG = 1 for log10 wavelengths, the
+    unit from WAT1_001 when CUNIT1 is absent), or from COEFF0/COEFF1 (log10 of the wavelength in
+    Angstrom, as SDSS writes it); an image with neither is refused, never read on pixel numbers."""
     from astropy.wcs import WCS
 
     hdu = hdul[0] if hdul[0].data is not None else (hdul[1] if len(hdul) > 1 else None)
@@ -511,16 +514,30 @@ def _read_wcs1d(hdul, path, spectral_unit, flux_unit):
     if data.ndim != 1:
         raise SpectrumReadError(f"{path}: 1-D WCS spectrum must have 1-D data, got shape {data.shape}")
     hdr = hdu.header
-    w = WCS(hdr, naxis=1)
-    axis = w.pixel_to_world_values(np.arange(data.size))
-    axis = np.asarray(axis, dtype=float)
     cunit = hdr.get("CUNIT1")
     ctype = str(hdr.get("CTYPE1", ""))
-    au = _unit(cunit, "spectral axis", path, spectral_unit)
-    # astropy WCS returns SI values for known CTYPEs
-    if w.wcs.cunit[0] and str(w.wcs.cunit[0]) != "":
-        au_wcs = u.Unit(str(w.wcs.cunit[0]))
-        axis = (axis * au_wcs).to_value(au)
+    has_wcs = "CRVAL1" in hdr and ("CDELT1" in hdr or "CD1_1" in hdr)
+    if not has_wcs and "COEFF0" in hdr and "COEFF1" in hdr:
+        # log10-linear wavelengths in Angstrom by two coefficients (the convention of SDSS spectra)
+        axis = 10.0 ** (float(hdr["COEFF0"]) + float(hdr["COEFF1"]) * np.arange(data.size))
+        au = _unit(cunit or "Angstrom", "spectral axis", path, spectral_unit)
+    elif not has_wcs:
+        raise SpectrumReadError(
+            f"{path}: the image header gives no spectral axis (no CRVAL1 with CDELT1 or CD1_1, no COEFF0/COEFF1): "
+            "pixel numbers are not wavelengths"
+        )
+    else:
+        w = WCS(hdr, naxis=1)
+        axis = np.asarray(w.pixel_to_world_values(np.arange(data.size)), dtype=float)
+        if cunit in (None, "") and "units=angstroms" in str(hdr.get("WAT1_001", "")).lower():
+            cunit = "Angstrom"  # the IRAF multispec convention: the unit is in WAT1_001
+        au = _unit(cunit, "spectral axis", path, spectral_unit)
+        # astropy WCS returns SI values for known CTYPEs
+        if w.wcs.cunit[0] and str(w.wcs.cunit[0]) != "":
+            au_wcs = u.Unit(str(w.wcs.cunit[0]))
+            axis = (axis * au_wcs).to_value(au)
+        if int(hdr.get("DC-FLAG", 0) or 0) == 1 and not ctype.upper().endswith("-LOG"):
+            axis = 10.0**axis  # IRAF's DC-FLAG = 1: the WCS gives log10 of the wavelength
     fu = _unit(hdr.get("BUNIT"), "flux", path, flux_unit)
     sigma = None
     for ext in hdul[1:]:

@@ -2,7 +2,7 @@
 
 The same invented jet pair (beta 0.2 at 60 deg, H-alpha, S/N 40) is written in 30 valid but
 unusual ways: scaled, unsigned and null-flagged integer FITS columns, array and variable-length
-columns, 1-D WCS images in air and vacuum, frequency, energy, nm and micron axes, descending
+columns, 1-D WCS images in air and vacuum, log10-linear images (IRAF DC-FLAG, COEFF0/COEFF1), frequency, energy, nm and micron axes, descending
 axes, inverse-variance and variance columns, masked and NaN pixels, gzip, odd names and more,
 all written by astropy (not by dopplerkit's writer). Every one must fit right (ok, beta within 5
 sigma); each of 14 invalid files must get an error row naming the trouble, and the run must go on.
@@ -146,6 +146,18 @@ def _valid(d):
         h = fits.Header({"CTYPE1": ctype, "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": grid[0], "CDELT1": grid[1] - grid[0], "BUNIT": FU})
         err = fits.ImageHDU(ee, header=fits.Header({"EXTNAME": "ERROR", "BUNIT": FU}))
         fits.HDUList([fits.PrimaryHDU(ff, header=h), err]).writeto(d / name)
+    # log10-linear images: IRAF's DC-FLAG = 1 with the unit in WAT1_001 (the IRAF spectral WCS,
+    # Valdes 1993; from memory), and two coefficients COEFF0/COEFF1 for log10 of the wavelength in
+    # Angstrom (the SDSS convention; from memory)
+    loglam = np.arange(np.log10(w[0]), np.log10(w[-1]), 5e-5)
+    lf, le = np.interp(10**loglam, w, f), np.interp(10**loglam, w, e)
+    h = fits.Header({"CTYPE1": "LINEAR", "CRPIX1": 1.0, "CRVAL1": loglam[0], "CD1_1": 5e-5, "DC-FLAG": 1, "BUNIT": FU})
+    h["WAT1_001"] = "wtype=linear label=Wavelength units=angstroms"
+    err = fits.ImageHDU(le, header=fits.Header({"EXTNAME": "ERROR", "BUNIT": FU}))
+    fits.HDUList([fits.PrimaryHDU(lf, header=h), err]).writeto(d / "iraf_loglinear.fits")
+    h = fits.Header({"COEFF0": loglam[0], "COEFF1": 5e-5, "BUNIT": FU})
+    err = fits.ImageHDU(le, header=fits.Header({"EXTNAME": "ERROR", "BUNIT": FU}))
+    fits.HDUList([fits.PrimaryHDU(lf, header=h), err]).writeto(d / "coefficients_loglinear.fits")
     # gzip
     with open(d / "plain.fits", "rb") as src, gzip.open(d / "compressed.fits.gz", "wb") as dst:
         shutil.copyfileobj(src, dst)
@@ -200,6 +212,10 @@ def _invalid(d):
     bad["negative_errors.ecsv"] = "sigma"
     Table({"name": ["a", "b"], "value": [1, 2]}).write(d / "not_a_spectrum.ecsv")
     bad["not_a_spectrum.ecsv"] = "spectral axis"
+    # an image with no spectral axis at all: pixel numbers are no wavelengths, even with a unit configured
+    err = fits.ImageHDU(e, header=fits.Header({"EXTNAME": "ERROR", "BUNIT": FU}))
+    fits.HDUList([fits.PrimaryHDU(f, header=fits.Header({"BUNIT": FU})), err]).writeto(d / "image_without_axis.fits")
+    bad["image_without_axis.fits"] = "no spectral axis"
     (d / "header_only.csv").write_text("wavelength,flux,error\n")
     bad["header_only.csv"] = ""
     Table({"wavelength": w * u.AA, "flux": f * u.Unit(FU), "error": np.zeros(w.size) * u.Unit(FU)}).write(d / "zero_errors.ecsv")
