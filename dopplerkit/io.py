@@ -6,7 +6,9 @@ Formats (``FORMATS``), chosen once per directory and passed explicitly to the re
   float/integer columns are read straight into numpy, anything with scaled (TSCALn/TZEROn,
   unsigned), null-flagged (TNULLn), array (TDIMn) or heap columns by astropy.io.fits, which
   applies those keywords;
-- ``wcs1d-fits``: FITS image with a linear 1-D WCS, read with astropy.io.fits;
+- ``wcs1d-fits``: FITS image with a 1-D WCS (linear, or log10-linear with IRAF's DC-FLAG = 1 or
+  ``-LOG``), or with COEFF0/COEFF1 (log10 of the wavelength in Angstrom), read with
+  astropy.io.fits; an image with none of these is refused;
 - ``ecsv``: astropy ECSV table;
 - ``ascii``: plain text or CSV with a header line.
 
