@@ -13,7 +13,8 @@ Formats (``FORMATS``), chosen once per directory and passed explicitly to the re
 - ``ascii``: plain text or CSV with a header line.
 
 Table columns are found by name, case-insensitively: the axis is ``wavelength``,
-``frequency`` or ``energy`` (also ``wave``, ``lambda``, ``freq``); the flux is ``flux``;
+``frequency`` or ``energy`` (also ``wave``, ``lambda``, ``freq``), or ``loglam`` (log10 of the
+wavelength in Angstrom, as SDSS writes it); the flux is ``flux``;
 the uncertainty is ``uncertainty`` or ``error``/``err``/``sigma`` (standard deviation),
 ``ivar`` (inverse variance) or ``variance``/``var``. Units come from the file (ECSV units,
 FITS TUNITn / BUNIT / CUNIT1); where the file has none they must be given.
@@ -366,9 +367,12 @@ def _float_column(data, path, name) -> np.ndarray:
 def _from_table(t, path, spectral_unit, flux_unit):
     names = {c.lower(): c for c in t.colnames}
     axis_col = next((names[n] for n in AXIS_NAMES if n in names), None)
+    log_axis = axis_col is None and "loglam" in names  # log10 of the wavelength in Angstrom (the SDSS convention)
+    if log_axis:
+        axis_col = names["loglam"]
     if axis_col is None:
         raise SpectrumReadError(
-            f"{path}: no spectral axis column; expected one of {sorted(AXIS_NAMES)} (case-insensitive), found {t.colnames}"
+            f"{path}: no spectral axis column; expected one of {sorted(AXIS_NAMES)} or loglam (case-insensitive), found {t.colnames}"
         )
     if "flux" not in names:
         raise SpectrumReadError(f"{path}: no 'flux' column; found {t.colnames}")
@@ -382,6 +386,8 @@ def _from_table(t, path, spectral_unit, flux_unit):
 
     axis, au = col(axis_col)
     flux, fu = col(flux_col)
+    if log_axis:
+        axis, au = 10.0**axis, "Angstrom"
     au = _unit(au, "spectral axis", path, spectral_unit)
     fu = _unit(fu, "flux", path, flux_unit)
     sigma = None

@@ -2,7 +2,7 @@
 
 The same invented jet pair (beta 0.2 at 60 deg, H-alpha, S/N 40) is written in 30 valid but
 unusual ways: scaled, unsigned and null-flagged integer FITS columns, array and variable-length
-columns, 1-D WCS images in air and vacuum, log10-linear images (IRAF DC-FLAG, COEFF0/COEFF1), frequency, energy, nm and micron axes, descending
+columns, 1-D WCS images in air and vacuum, log10-linear images (IRAF DC-FLAG, COEFF0/COEFF1) and a loglam column, frequency, energy, nm and micron axes, descending
 axes, inverse-variance and variance columns, masked and NaN pixels, gzip, odd names and more,
 all written by astropy (not by dopplerkit's writer). Every one must fit right (ok, beta within 5
 sigma); each of 14 invalid files must get an error row naming the trouble, and the run must go on.
@@ -158,6 +158,9 @@ def _valid(d):
     h = fits.Header({"COEFF0": loglam[0], "COEFF1": 5e-5, "BUNIT": FU})
     err = fits.ImageHDU(le, header=fits.Header({"EXTNAME": "ERROR", "BUNIT": FU}))
     fits.HDUList([fits.PrimaryHDU(lf, header=h), err]).writeto(d / "coefficients_loglinear.fits")
+    # a table with loglam (log10 of the wavelength in Angstrom) and ivar columns, flux unit from the
+    # config: the SDSS column convention (from memory)
+    _table_fits(d / "loglam_ivar.fits", [col("flux", "E", lf), col("loglam", "E", loglam), col("ivar", "E", 1 / le**2)])
     # gzip
     with open(d / "plain.fits", "rb") as src, gzip.open(d / "compressed.fits.gz", "wb") as dst:
         shutil.copyfileobj(src, dst)
