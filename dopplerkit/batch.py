@@ -831,12 +831,12 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
             notes += [n for n in r["notes"] if n not in notes]
     if cfg["model"] == "jet-pair":
         pairs = []
+        # the jets move in the host's frame: 1 + z = (1 + z_host)(1 + z_kin) (the observed
+        # redshifts in the row stay as measured; the host's redshift is taken as exact)
+        hz = 1.0 + float(cfg.get("host_z", 0.0))
         for ln in _line_dicts(cfg):
             if ln["components"] == 2:
                 pre = slug(ln["label"])
-                # the jets move in the host's frame: 1 + z = (1 + z_host)(1 + z_kin) (the observed
-                # redshifts in the row stay as measured; the host's redshift is taken as exact)
-                hz = 1.0 + float(cfg.get("host_z", 0.0))
                 za, ea, zr, er = (row[f"{pre}_{c}_{q}"] for c in ("approaching", "receding") for q in ("z", "z_err"))
                 rho = row.get(f"{pre}_z_corr", 0.0)
                 pairs.append(((1.0 + za) / hz - 1.0, ea / hz, (1.0 + zr) / hz - 1.0, er / hz, rho if np.isfinite(rho) else 0.0))

@@ -1894,10 +1894,10 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
             weakest[q["lidx"]] = min(weakest.get(q["lidx"], np.inf), abs(q["flux"]))
 
         def measured(mu, width, beside):
-            got = _flux_at(x, y, sig, mu, abs(mu) * width / (C_KMS * _FWHM_GAUSS), beside)
+            sg = abs(mu) * width / (C_KMS * _FWHM_GAUSS)
+            got = _flux_at(x, y, sig, mu, sg, beside)
             if got is None or isinstance(got, dict):
                 return None
-            sg = abs(mu) * width / (C_KMS * _FWHM_GAUSS)
             # less what lines of the same gas there may explain
             f = sign * got[0] - sum(fmax for c, fw, fmax in companions if abs(c - mu) < max(fw, _FWHM_GAUSS * sg))
             return f, got[1]
