@@ -1281,7 +1281,9 @@ def _fill_table(source, n: int, keys=None, units=None):
         "dopplerkit batch results; viewing angles in degrees (0 = moving straight at us); z < 0 is a blueshift; "
         "line centres in each line's catalogue unit (wavelengths in the medium of the medium column), "
         "FWHM in km/s as observed (instrumental broadening not removed), integrated line fluxes in erg/(s cm2) (photon spectra: ph/(s cm2)); "
-        "error_scale: the factor line errors were scaled up by for noise correlated between neighbouring pixels (1: none)"
+        "error_scale: the factor line errors were scaled up by for noise correlated between neighbouring pixels (1: none); "
+        "<line>_z_corr: the correlation of a pair's two redshift errors (in beta's and the angle's errors); "
+        "beta and viewing angle in the host's frame ([host] z divided out of the observed redshifts)"
     ]
     return t
 
