@@ -399,19 +399,20 @@ def run_demo(output_dir: str | Path = "results", workers: int | None = None, out
             if not np.all(m["status"] == "ok"):
                 skipped.append((name, "; ".join(dict.fromkeys(msg for msg in m["message"] if msg)) or ",".join(m["flags"])))
                 continue
-            rows.append((mjd, m["z"][0], m["z"][2], m["z_err"][0], m["z_err"][2]))
+            corr = m.meta["z_corr"][0][0][1]  # the two jets' z errors, fitted together, correlate where the lines overlap
+            rows.append((mjd, m["z"][0], m["z"][2], m["z_err"][0], m["z_err"][2], corr))
     if skipped:
         print(f"  {len(skipped)} of {len(epochs)} epochs left out of the fit, their lines suspect:", file=out)
         for name, why in skipped:
             print(f"    {name}: {why}", file=out)
     arr = np.array(rows)
-    lines_t = Table(arr, names=["mjd", "z_blue", "z_red", "z_blue_err", "z_red_err"])
+    lines_t = Table(arr, names=["mjd", "z_blue", "z_red", "z_blue_err", "z_red_err", "z_corr"])
     from .io import write_table
 
     write_table(lines_t, res / "dkx1_lines.ecsv")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        cmp = compare_models("precessing-jet", arr[:, 0], arr[:, 1], arr[:, 2], arr[:, 3], z_2_err=arr[:, 4])
+        cmp = compare_models("precessing-jet", arr[:, 0], arr[:, 1], arr[:, 2], arr[:, 3], z_2_err=arr[:, 4], z_corr=arr[:, 5])
     print(cmp.relativistic.report(), file=out)
     print(cmp.report(), file=out)
     _warning_summary(caught, out)

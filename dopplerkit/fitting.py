@@ -741,6 +741,7 @@ def fit_precessing_jet(
     relativistic: bool = True,
     start: dict | None = None,
     z_systemic=None,
+    z_corr=0.0,
     scale_errors: bool = False,
 ):
     """Fit the kinematic model of two opposite precessing jets to a redshift time series.
@@ -770,6 +771,11 @@ def fit_precessing_jet(
         Gaussian prior. It cannot be fitted freely: in this model only Gamma (1 + z_sys) is
         fixed by the data, so a systemic velocity and beta are degenerate. When not given it
         is taken as 0 and the notes say how far beta would move per 100 km/s of it.
+    z_corr : float or array
+        Correlation coefficient of the errors of ``z_1`` and ``z_2`` at each epoch, in (-1, 1):
+        both lines fitted in one spectrum, overlapping lines (near the crossings) are correlated
+        (``measure_lines`` gives it in ``meta["z_corr"]``). Each epoch's pair enters the
+        chi-square with its 2 x 2 covariance. 0 (the default) treats them as independent.
     scale_errors : bool
         Scale the uncertainties by sqrt(reduced chi-square) when the fit is poor.
 
@@ -806,7 +812,7 @@ def fit_precessing_jet(
             raise ValueError(f"z_systemic must be a number or (value, sd), got {z_systemic!r}")
         zsys0 = _measured(z_systemic[0], "z_systemic value")
         zsys_prior = (zsys0, _measured(z_systemic[1], "z_systemic sd", positive=True))
-    for name, v in (("z_err", z_err), ("z_2_err", z_2_err), ("z_1", z_1), ("z_2", z_2), ("t", t)):
+    for name, v in (("z_err", z_err), ("z_2_err", z_2_err), ("z_1", z_1), ("z_2", z_2), ("t", t), ("z_corr", z_corr)):
         if v is not None and np.asarray(getattr(v, "value", v)).dtype.kind in "bUSO":
             raise TypeError(f"{name} must be numbers (an array or a number), got {np.asarray(v).dtype.kind!r}-type values {v!r:.60}")
     if period_range is not None:
@@ -823,6 +829,12 @@ def fit_precessing_jet(
         raise ValueError(f"t, z_1 and z_2 must be 1-D of equal length, got shapes {tt.shape}, {z1.shape}, {z2.shape}")
     if np.any(~(e1 > 0)) or np.any(~(e2 > 0)) or not np.all(np.isfinite(e1)) or not np.all(np.isfinite(e2)):
         raise ValueError("z_err (and z_2_err) must be finite and > 0 at every epoch")
+    try:
+        rho = np.broadcast_to(np.asarray(_dimensionless(z_corr, "z_corr"), float), tt.shape).copy()
+    except ValueError as exc:
+        raise ValueError(f"z_corr must be a number or one per epoch ({tt.size}), got shape {np.shape(z_corr)}") from exc
+    if np.any(~(np.abs(rho) < 1)):
+        raise ValueError(f"z_corr must be a correlation coefficient in (-1, 1), got {float(rho[np.flatnonzero(~(np.abs(rho) < 1))[0]])!r}")
     both = np.isfinite(z1) & np.isfinite(z2)
     if both.sum() < 6:
         raise ValueError(f"need at least 6 epochs with both lines measured, got {int(both.sum())}")
@@ -837,15 +849,16 @@ def fit_precessing_jet(
     params.add("t0", value=float(s["t0"]), min=float(s["t0"]) - float(s["period"]), max=float(s["t0"]) + float(s["period"]))
     params.add("z_systemic", value=zsys0, vary=zsys_prior is not None)
     ok1, ok2 = np.isfinite(z1), np.isfinite(z2)
+    rho = np.where(both, rho, 0.0)  # a lone line has no partner to correlate with
+    whiten = _pair_whitening(rho)
 
     def residual(p):
         v = p.valuesdict()
         m1, m2 = _precess_model(v, tt, relativistic)
-        r1 = np.where(ok1, (m1 - np.nan_to_num(z1)) / e1, 0.0)
-        r2 = np.where(ok2, (m2 - np.nan_to_num(z2)) / e2, 0.0)
+        r1, r2 = whiten(np.where(ok1, (m1 - np.nan_to_num(z1)) / e1, 0.0), np.where(ok2, (m2 - np.nan_to_num(z2)) / e2, 0.0))
         if allow_label_swap:
-            s1 = np.where(ok2, (m1 - np.nan_to_num(z2)) / e2, 0.0)
-            s2 = np.where(ok1, (m2 - np.nan_to_num(z1)) / e1, 0.0)
+            # the other assignment: z_1 belongs to jet 2 and z_2 to jet 1 (the measured errors and their correlation stay)
+            s1, s2 = whiten(np.where(ok1, (m2 - np.nan_to_num(z1)) / e1, 0.0), np.where(ok2, (m1 - np.nan_to_num(z2)) / e2, 0.0))
             swap = (s1 * s1 + s2 * s2) < (r1 * r1 + r2 * r2)
             r1, r2 = np.where(swap, s1, r1), np.where(swap, s2, r2)
         if zsys_prior is not None:
@@ -864,7 +877,8 @@ def fit_precessing_jet(
     p = res.params
     v = p.valuesdict()
     m1, m2 = _precess_model(v, tt, relativistic)
-    swapped = int(np.sum(_swapped(m1, m2, z1, z2, both)))
+    swap_mask = _swapped(m1, m2, z1, z2, both, e1, e2, rho)
+    swapped = int(np.sum(swap_mask))
     notes = []
     _check_bounds(p, ["eta", "inclination", "cone_angle", "period", "t0"], notes)
     notes.append(
@@ -886,14 +900,35 @@ def fit_precessing_jet(
                 f"100 km/s of systemic velocity not modelled moves beta by {shift:.2g} (give z_systemic= from other lines)"
             )
     _quality(res, notes, scale_errors)
-    _residual_periodicity(tt, z1, z2, m1, m2, e1, e2, _swapped(m1, m2, z1, z2, both), p["period"].value, notes)
+    _residual_periodicity(tt, z1, z2, m1, m2, e1, e2, swap_mask, p["period"].value, notes)
     name = "precessing-jet" if relativistic else "precessing-jet (Galilean)"
-    return KinematicFit(p, res, name, notes, {"t": tt, "z_1": z1, "z_2": z2, "z_err": e1, "z_2_err": e2, "swapped": swapped}, residual)
+    data = {"t": tt, "z_1": z1, "z_2": z2, "z_err": e1, "z_2_err": e2, "z_corr": rho, "swapped": swapped}
+    return KinematicFit(p, res, name, notes, data, residual)
 
 
-def _swapped(m1, m2, z1, z2, both):
-    """Epochs whose two measured lines fit better the other way round."""
-    return both & ((m1 - z2) ** 2 + (m2 - z1) ** 2 < (m1 - z1) ** 2 + (m2 - z2) ** 2)
+def _pair_whitening(rho):
+    """Whitening of two normalised residuals whose errors correlate by ``rho`` (per epoch).
+
+    (a, b) -> (a, (b - rho a) / sqrt(1 - rho**2)): the inverse Cholesky factor of the correlation
+    matrix [[1, rho], [rho, 1]], so that the sum of squares is the chi-square of the pair with its
+    covariance, (a**2 - 2 rho a b + b**2) / (1 - rho**2) (generalised least squares; common
+    practice, no source).
+    """
+    if not np.any(rho):
+        return lambda a, b: (a, b)
+    k = 1.0 / np.sqrt(1.0 - rho * rho)
+    return lambda a, b: (a, (b - rho * a) * k)
+
+
+def _swapped(m1, m2, z1, z2, both, e1=1.0, e2=1.0, rho=0.0):
+    """Epochs whose two measured lines fit better the other way round (chi-square of each assignment)."""
+
+    def chi2(a, b):
+        a, b = a / e1, b / e2
+        return a * a - 2 * rho * a * b + b * b
+
+    with np.errstate(invalid="ignore"):
+        return both & (chi2(m2 - z1, m1 - z2) < chi2(m1 - z1, m2 - z2))
 
 
 def _residual_periodicity(t, z1, z2, m1, m2, e1, e2, swap, period, notes, fap_max: float = 1e-3):
