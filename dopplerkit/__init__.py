@@ -20,6 +20,7 @@ from .exceptions import (
     FitQualityWarning,
     MediumWarning,
     NearLightSpeedWarning,
+    ReferenceFrameWarning,
     UnresolvedLineWarning,
     WeakLineWarning,
 )
@@ -72,6 +73,7 @@ __all__ = [
     "FitQualityWarning",
     "MediumWarning",
     "NearLightSpeedWarning",
+    "ReferenceFrameWarning",
     "UnresolvedLineWarning",
     "WeakLineWarning",
     "__version__",

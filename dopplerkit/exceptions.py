@@ -13,6 +13,7 @@ __all__ = [
     "FitQualityWarning",
     "MediumWarning",
     "NearLightSpeedWarning",
+    "ReferenceFrameWarning",
     "UnresolvedLineWarning",
     "WeakLineWarning",
 ]
@@ -44,6 +45,10 @@ class MediumWarning(DopplerkitWarning):
 
 class WeakLineWarning(DopplerkitWarning):
     """A fitted component is not needed by the data, is blended with another, or its identification is contradicted."""
+
+
+class ReferenceFrameWarning(DopplerkitWarning):
+    """The spectral axis moves with the observer (topocentric, geocentric): Earth's motion is in the redshifts."""
 
 
 class FitQualityWarning(DopplerkitWarning):

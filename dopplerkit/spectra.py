@@ -43,13 +43,18 @@ from .kinematics import _speed, doppler_factor
 
 __all__ = [
     "BEAMING",
+    "EARTH_MOTION_MAX_KMS",
+    "OBSERVER_FRAMES",
+    "barycentric_correction",
     "boost_arrays",
     "boost_spectrum",
     "deboost_spectrum",
     "flux_scaling",
     "is_observer_frame",
     "resample",
+    "spectral_frame",
     "spectral_medium",
+    "to_barycentric",
     "with_medium",
 ]
 
@@ -507,3 +512,258 @@ def resample(spectrum, new_axis: u.Quantity, method: str = "flux_conserving", ex
     )
     out.meta = dict(spectrum.meta or {})
     return out
+
+
+# ---------------------------------------------------------------------------
+# The standard of rest of the spectral axis (the observer's own motion)
+# ---------------------------------------------------------------------------
+#: The largest line-of-sight speed of an observer on Earth relative to the solar-system
+#: barycentre, km/s: Earth's orbital speed (29.3-30.3 km/s, aphelion to perihelion), its rotation
+#: at the equator (0.47 km/s) and its motion about the Earth-Moon barycentre (0.01 km/s) (Cox
+#: 2000, Allen's Astrophysical Quantities, 4th ed., ch. 12; from memory). A redshift measured in
+#: the observer's frame is off by up to this / c x (1 + z).
+EARTH_MOTION_MAX_KMS = 30.8
+
+#: FITS ``SPECSYS`` values of frames that move with the observer (the Earth's surface, its centre):
+#: Earth's motion is in their redshifts. The keyword and its values are those of FITS WCS
+#: (Greisen et al. 2006, A&A 446, 747; from memory); others are BARYCENT, HELIOCEN, LSRK, ...
+OBSERVER_FRAMES = ("TOPOCENT", "GEOCENTR")
+
+
+def _meta_of(spectrum_or_meta) -> dict:
+    if isinstance(spectrum_or_meta, dict):
+        return spectrum_or_meta
+    meta = getattr(spectrum_or_meta, "meta", None)
+    if meta is None:
+        raise TypeError(f"expected a specutils Spectrum or a dict of header keywords, got {type(spectrum_or_meta).__name__}")
+    return meta
+
+
+def _keyword(meta: dict, *keys):
+    """The first of ``keys`` in ``meta`` (any case) or in ``meta["header"]``; None if none is there."""
+    header = meta.get("header")
+    lower = {str(k).lower(): v for k, v in meta.items() if k != "header"}
+    for k in keys:
+        v = lower.get(k.lower())
+        if v is None and header is not None:
+            try:
+                v = header.get(k)
+            except AttributeError:
+                v = None
+        if v is not None and not (isinstance(v, str) and not v.strip()):
+            return v
+    return None
+
+
+def spectral_frame(spectrum) -> str | None:
+    """The standard of rest the spectral axis refers to: FITS ``SPECSYS``, upper case; None if not given.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum or dict
+        A spectrum (its ``meta``, or ``meta["header"]``) or a dict of header keywords.
+
+    Returns
+    -------
+    str or None
+        "TOPOCENT", "GEOCENTR", "BARYCENT", "HELIOCEN", "LSRK", ... as the file says. The first
+        two (:data:`OBSERVER_FRAMES`) carry Earth's motion in their redshifts: see
+        :func:`to_barycentric`.
+    """
+    v = _keyword(_meta_of(spectrum), "SPECSYS")
+    return str(v).strip().upper() if v is not None else None
+
+
+def _angle(value, name, hours: bool):
+    """Degrees from a header value: a number (degrees) or a sexagesimal string (hours for RA)."""
+    from astropy.coordinates import Angle
+
+    if isinstance(value, str):
+        text = value.strip()
+        try:
+            if any(c in text for c in ": hms"):
+                return Angle(text, unit=u.hourangle if hours else u.deg).to_value(u.deg)
+            return float(text)
+        except (ValueError, u.UnitsError) as exc:
+            raise ValueError(f"header {name} = {value!r} is neither degrees nor a sexagesimal angle") from exc
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
+        raise ValueError(f"header {name} must be an angle, got {value!r}")
+    return float(value)
+
+
+def _observation_time(meta):
+    """Mid-exposure time from MJD-AVG / DATE-AVG, else MJD-OBS / DATE-OBS (+ EXPTIME / 2), UTC."""
+    from astropy.time import Time, TimeDelta
+
+    mjd = _keyword(meta, "MJD-AVG")
+    if mjd is not None:
+        return Time(float(mjd), format="mjd", scale="utc"), "MJD-AVG"
+    date = _keyword(meta, "DATE-AVG")
+    if date is not None:
+        return Time(str(date), scale="utc"), "DATE-AVG"
+    t, key = None, None
+    mjd = _keyword(meta, "MJD-OBS")
+    if mjd is not None:
+        t, key = Time(float(mjd), format="mjd", scale="utc"), "MJD-OBS"
+    else:
+        date = _keyword(meta, "DATE-OBS")
+        if date is not None:
+            date = str(date).strip()
+            if "T" not in date:
+                clock = _keyword(meta, "TIME-OBS", "UT", "UTSTART")
+                if clock is None:
+                    raise ValueError(f"header DATE-OBS = {date!r} gives the date only (no time of day, no TIME-OBS or UT)")
+                date = f"{date}T{str(clock).strip()}"
+            t, key = Time(date, scale="utc"), "DATE-OBS"
+    if t is None:
+        return None, None
+    exptime = _keyword(meta, "EXPTIME", "EXPOSURE")
+    if exptime is not None:
+        try:
+            half = 0.5 * float(exptime)
+        except (TypeError, ValueError):
+            half = 0.0
+        if np.isfinite(half) and half > 0:
+            t, key = t + TimeDelta(half, format="sec"), f"{key} + EXPTIME/2"
+    return t, key
+
+
+def barycentric_correction(spectrum, *, location=None) -> u.Quantity:
+    """Radial-velocity correction from the observer's frame to the solar-system barycentre.
+
+    From the target, time and observatory in the spectrum's header keywords, computed with
+    astropy (``SkyCoord.radial_velocity_correction``, its built-in ephemeris: no download).
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum or dict
+        Its ``meta`` (or ``meta["header"]``), or a dict of header keywords, must give the target
+        (``RA_OBJ``/``DEC_OBJ`` or ``RA``/``DEC``: ICRS degrees, or sexagesimal strings with RA
+        in hours), the time (``MJD-AVG``/``DATE-AVG``, or ``MJD-OBS``/``DATE-OBS`` shifted by
+        half of ``EXPTIME``; UTC) and, for a topocentric axis, the observatory
+        (``OBSGEO-X/Y/Z``, geocentric metres) unless ``location`` is given. A geocentric axis
+        (``SPECSYS = 'GEOCENTR'``) is corrected from the Earth's centre.
+    location : astropy.coordinates.EarthLocation, optional
+        The observatory, where the header does not give it.
+
+    Returns
+    -------
+    Quantity (km/s)
+        ``v_corr`` with ``(1 + z_bary) = (1 + z_obs)(1 + v_corr / c)``: positive when the
+        observer moves away from the target (the observed lines are too blue by that much).
+        Astropy's convention (rv_bary = rv + v_corr + rv v_corr / c); good to the m/s level,
+        far below any line centre this package fits.
+
+    Raises
+    ------
+    ValueError
+        A keyword missing or unreadable; the message lists what was looked for.
+    """
+    import warnings
+
+    from astropy.coordinates import EarthLocation, SkyCoord
+    from astropy.utils import iers
+
+    meta = _meta_of(spectrum)
+    missing = []
+    ra = _keyword(meta, "RA_OBJ", "RA")
+    dec = _keyword(meta, "DEC_OBJ", "DEC")
+    if ra is None or dec is None:
+        missing.append("the target (RA_OBJ/DEC_OBJ or RA/DEC)")
+    t, _ = _observation_time(meta)
+    if t is None:
+        missing.append("the time (MJD-AVG, DATE-AVG, MJD-OBS or DATE-OBS)")
+    frame = spectral_frame(meta)
+    if location is None:
+        if frame == "GEOCENTR":
+            # the Earth's centre moves as a pole does (on the rotation axis, rotation adds nothing);
+            # astropy's gravitational term is singular at the centre itself
+            location = EarthLocation.from_geodetic(0.0 * u.deg, 90.0 * u.deg, 0.0 * u.m)
+        else:
+            xyz = [_keyword(meta, f"OBSGEO-{c}") for c in "XYZ"]
+            if any(v is None for v in xyz):
+                missing.append("the observatory (OBSGEO-X/Y/Z in metres, or location=)")
+            else:
+                try:
+                    location = EarthLocation.from_geocentric(*(float(v) for v in xyz), unit=u.m)
+                except (TypeError, ValueError) as exc:
+                    raise ValueError(f"header OBSGEO-X/Y/Z = {xyz!r} must be geocentric coordinates in metres") from exc
+    if missing:
+        raise ValueError("cannot compute the barycentric correction: the header lacks " + "; ".join(missing))
+    if not isinstance(location, EarthLocation):
+        raise TypeError(f"location must be an astropy EarthLocation, got {type(location).__name__}")
+    target = SkyCoord(ra=_angle(ra, "RA", hours=True) * u.deg, dec=_angle(dec, "DEC", hours=False) * u.deg, frame="icrs")
+    with warnings.catch_warnings(), iers.conf.set_temp("auto_download", False):
+        # without a download, times past the bundled Earth-orientation tables use predictions: an
+        # error of arcseconds in orientation, micrometres per second in this velocity
+        warnings.simplefilter("ignore")
+        v = target.radial_velocity_correction(kind="barycentric", obstime=t, location=location)
+    return v.to(u.km / u.s)
+
+
+def _frame_axis(axis, unit, medium, v_kms):
+    """The spectral axis values seen from a frame in which the observer moves by ``v_kms`` (see :func:`barycentric_correction`).
+
+    Wavelengths (vacuum ones: an air axis is converted there and back, Morton 2000) are
+    multiplied by 1 + v/c; frequencies, energies and wavenumbers divided by it.
+    """
+    from .kinematics import SPEED_OF_LIGHT_KMS
+
+    f = 1.0 + float(v_kms) / SPEED_OF_LIGHT_KMS
+    unit = u.Unit(unit)
+    axis = np.asarray(axis, float)
+    if _axis_k(unit) == 1:
+        return axis / f
+    if medium == "air":
+        from .lines import air_to_vacuum, vacuum_to_air
+
+        return vacuum_to_air(air_to_vacuum(axis * unit) * f).to_value(unit)
+    return axis * f
+
+
+def to_barycentric(spectrum, correction=None, *, location=None):
+    """The spectrum seen from the solar-system barycentre: the observer's motion taken out of its axis.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        Any spectral axis; air wavelengths are shifted as vacuum ones (converted there and back).
+    correction : Quantity (speed), optional
+        ``v_corr`` as defined in :func:`barycentric_correction`; computed from the header
+        keywords there when None.
+    location : astropy.coordinates.EarthLocation, optional
+        The observatory, where the header does not give it (``correction`` None only).
+
+    Returns
+    -------
+    specutils.Spectrum
+        A new spectrum: axis multiplied by ``1 + v_corr/c`` (wavelength) or divided by it
+        (frequency, energy); flux and uncertainty unchanged (a change of the axis labels, as
+        pipelines apply it); ``meta["SPECSYS"] = "BARYCENT"`` and
+        ``meta["barycentric_correction"]`` (km/s). The input is not touched.
+    """
+    from specutils import Spectrum
+
+    if correction is None:
+        v = barycentric_correction(spectrum, location=location)
+    else:
+        v = u.Quantity(correction)
+        if not v.unit.is_equivalent(u.km / u.s):
+            raise u.UnitsError(f"correction must be a speed (e.g. km/s), got unit {v.unit!r}")
+        v = v.to(u.km / u.s)
+        if v.ndim != 0 or not np.isfinite(v.value) or abs(v.value) > 1000:
+            raise ValueError(f"correction must be one finite speed within +-1000 km/s (an observer's motion), got {correction!r}")
+    unit = spectrum.spectral_axis.unit
+    medium = spectral_medium(spectrum) if unit.is_equivalent(u.m) else None
+    new_axis = _frame_axis(spectrum.spectral_axis.value, unit, medium, v.value) * unit
+    meta = dict(spectrum.meta or {})
+    meta["SPECSYS"] = "BARYCENT"
+    meta.pop("specsys", None)
+    meta["barycentric_correction"] = float(v.value)
+    return Spectrum(
+        flux=spectrum.flux,
+        spectral_axis=new_axis,
+        uncertainty=copy.deepcopy(spectrum.uncertainty),
+        mask=None if spectrum.mask is None else np.array(spectrum.mask, copy=True),
+        meta=meta,
+    )

@@ -214,3 +214,109 @@ def test_with_medium_marks_a_copy(spectrum_angstrom):
     assert spectral_medium(air) == "air" and spectral_medium(spectrum_angstrom) == "vacuum"
     with pytest.raises(ValueError, match="medium must be 'air' or 'vacuum'"):
         with_medium(spectrum_angstrom, "water")
+
+
+# ---------------------------------------------------------------------------
+# The observer's motion: topocentric axes moved to the solar-system barycentre. Reference: astropy's
+# SpectralCoord.with_observer_stationary_relative_to (an exact velocity transformation, a separate
+# code path from the radial_velocity_correction used by dopplerkit); Earth's mean orbital speed
+# 29.78 km/s (Cox 2000, Allen's Astrophysical Quantities, 4th ed., ch. 12; from memory).
+# ---------------------------------------------------------------------------
+_SITE = {"OBSGEO-X": 4843319.3, "OBSGEO-Y": 2499823.5, "OBSGEO-Z": -3304672.2}  # a point on the Earth's surface (invented)
+
+
+def _topo_meta(**extra):
+    return (
+        {"SPECSYS": "TOPOCENT", "RA": "07:12:45.0", "DEC": "+18:20:00", "DATE-OBS": "2025-03-10T04:12:00", "EXPTIME": 1200.0}
+        | _SITE
+        | extra
+    )
+
+
+def _spectralcoord_barycentric(axis, meta, mid_time):
+    import warnings
+
+    from astropy.coordinates import EarthLocation, SkyCoord, SpectralCoord
+    from astropy.time import Time
+
+    loc = EarthLocation.from_geocentric(meta["OBSGEO-X"], meta["OBSGEO-Y"], meta["OBSGEO-Z"], unit=u.m)
+    t = Time(mid_time, scale="utc")
+    target = SkyCoord(
+        f"{meta['RA']} {meta['DEC']}",
+        unit=(u.hourangle, u.deg),
+        frame="icrs",
+        distance=1 * u.kpc,
+        radial_velocity=0 * u.km / u.s,
+        pm_ra_cosdec=0 * u.mas / u.yr,
+        pm_dec=0 * u.mas / u.yr,
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # astropy: no IERS download here, and the target's distance is nominal
+        return SpectralCoord(axis, observer=loc.get_itrs(obstime=t), target=target).with_observer_stationary_relative_to("icrs")
+
+
+@pytest.mark.parametrize("axis", [np.linspace(6000, 7000, 9) * u.AA, np.linspace(1.3, 1.5, 9) * u.GHz, np.linspace(6.0, 7.5, 9) * u.keV])
+def test_to_barycentric_matches_astropy_spectralcoord(axis):
+    meta = _topo_meta(medium="vacuum")
+    s = Spectrum(flux=np.ones(axis.size) * u.Jy, spectral_axis=axis, uncertainty=StdDevUncertainty(np.full(axis.size, 0.1)), meta=meta)
+    b = dk.spectra.to_barycentric(s)
+    want = _spectralcoord_barycentric(axis, meta, "2025-03-10T04:22:00")  # mid-exposure: DATE-OBS + EXPTIME / 2
+    # agreement to 0.01 km/s (astropy's radial_velocity_correction convention is good to the m/s level)
+    assert_allclose((b.spectral_axis.value - want.to_value(axis.unit)) / axis.value * 299792.458, 0.0, atol=0.01)
+    assert b.meta["SPECSYS"] == "BARYCENT" and dk.spectra.spectral_frame(s) == "TOPOCENT"
+    assert_allclose(b.meta["barycentric_correction"], dk.spectra.barycentric_correction(s).to_value(u.km / u.s))
+    assert s.meta["SPECSYS"] == "TOPOCENT"  # the input is not touched
+    assert_allclose(b.flux.value, s.flux.value) and np.array_equal(b.uncertainty.array, s.uncertainty.array)
+
+
+def test_to_barycentric_air_axis_moves_vacuum_wavelengths():
+    # an air axis is converted to vacuum, moved and converted back (a Doppler shift scales vacuum wavelengths)
+    air = np.linspace(6000, 7000, 9) * u.AA
+    s = Spectrum(flux=np.ones(9) * u.Jy, spectral_axis=air, meta=_topo_meta(medium="air"))
+    b = dk.spectra.to_barycentric(s, 20 * u.km / u.s)
+    vac = dk.lines.air_to_vacuum(air) * (1 + 20 / 299792.458)
+    assert_quantity_allclose(b.spectral_axis, dk.lines.vacuum_to_air(vac), rtol=1e-12)
+
+
+def test_barycentric_correction_size_on_the_sky():
+    # a target at the ecliptic pole sees none of Earth's orbital speed (only rotation, <= 0.47 km/s, and
+    # the Earth-Moon motion); one on the ecliptic sees all of it over a year (29.78 km/s, Cox 2000; from memory)
+    from astropy.coordinates import GeocentricTrueEcliptic, SkyCoord
+
+    pole = SkyCoord(lon=0 * u.deg, lat=90 * u.deg, frame=GeocentricTrueEcliptic()).icrs
+    plane = SkyCoord(lon=100 * u.deg, lat=0 * u.deg, frame=GeocentricTrueEcliptic()).icrs
+    v_pole, v_plane = [], []
+    for day in range(0, 365, 15):
+        base = _SITE | {"SPECSYS": "TOPOCENT", "MJD-OBS": 60676.0 + day}
+        v_pole.append(dk.spectra.barycentric_correction(base | {"RA": pole.ra.deg, "DEC": pole.dec.deg}).value)
+        v_plane.append(dk.spectra.barycentric_correction(base | {"RA": plane.ra.deg, "DEC": plane.dec.deg}).value)
+    assert np.max(np.abs(v_pole)) < 0.6
+    assert 29.0 < np.max(np.abs(v_plane)) < dk.spectra.EARTH_MOTION_MAX_KMS
+    assert np.max(v_plane) > 29.0 and np.min(v_plane) < -29.0  # towards and away from the target, half a year apart
+
+
+def test_barycentric_correction_header_forms():
+    bc = dk.spectra.barycentric_correction
+    v = bc(_topo_meta()).value
+    # degrees instead of sexagesimal; MJD instead of DATE-OBS (mid-exposure given directly)
+    deg = _topo_meta(RA=108.1875, DEC=18.3333333)
+    assert abs(bc(deg).value - v) < 1e-3
+    mid = {k: val for k, val in _topo_meta().items() if k not in ("DATE-OBS", "EXPTIME")} | {"MJD-AVG": 60744.18194444}
+    assert abs(bc(mid).value - v) < 1e-3
+    # a geocentric axis needs no observatory: it differs from the topocentric one by Earth's rotation (<= 0.47 km/s)
+    geo = {k: val for k, val in _topo_meta().items() if not k.startswith("OBSGEO")} | {"SPECSYS": "GEOCENTR"}
+    assert 0 < abs(bc(geo).value - v) < 0.47
+    # date and time in two keywords (older headers)
+    split = _topo_meta(**{"DATE-OBS": "2025-03-10", "TIME-OBS": "04:12:00"})
+    assert abs(bc(split).value - v) < 1e-3
+    with pytest.raises(ValueError, match=r"DATE-OBS = '2025-03-10' gives the date only"):
+        bc(_topo_meta(**{"DATE-OBS": "2025-03-10"}))
+    bare = {"SPECSYS": "TOPOCENT"}
+    with pytest.raises(ValueError, match=r"lacks the target \(RA_OBJ/DEC_OBJ or RA/DEC\); the time .*; the observatory \(OBSGEO-X/Y/Z"):
+        bc(bare)
+    with pytest.raises(ValueError, match=r"header RA = 'north' is neither degrees nor a sexagesimal angle"):
+        bc(_topo_meta(RA="north"))
+    with pytest.raises(ValueError, match=r"correction must be one finite speed within \+-1000 km/s"):
+        dk.spectra.to_barycentric(Spectrum(flux=np.ones(3) * u.Jy, spectral_axis=[1, 2, 3] * u.keV), [1, 2] * u.km / u.s)
+    with pytest.raises(u.UnitsError, match="correction must be a speed"):
+        dk.spectra.to_barycentric(Spectrum(flux=np.ones(3) * u.Jy, spectral_axis=[1, 2, 3] * u.keV), 3 * u.AA)
