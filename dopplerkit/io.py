@@ -25,6 +25,10 @@ arrays, a ``mask`` on the Spectrum; they are never fitted.
 The wavelength medium comes from ``meta["medium"]``, a FITS keyword ``MEDIUM``
 ('air'/'vacuum') or a 1-D WCS CTYPE1 (``AWAV`` = air, ``WAVE`` = vacuum).
 
+The header keywords of :data:`META_KEYWORDS` go into ``meta``: the object and time, and the
+reference frame of the spectral axis (FITS ``SPECSYS``) with what a barycentric correction needs
+(target RA/DEC, observatory OBSGEO-X/Y/Z; see :func:`dopplerkit.spectra.to_barycentric`).
+
 Every writer writes to a temporary file in the target directory and renames it into
 place, so a crash never leaves a half-written file under the final name.
 """
@@ -42,6 +46,7 @@ import numpy as np
 
 __all__ = [
     "FORMATS",
+    "META_KEYWORDS",
     "SpectrumArrays",
     "SpectrumReadError",
     "atomic_path",
@@ -405,6 +410,43 @@ def _from_table(t, path, spectral_unit, flux_unit):
     return axis, au, flux, fu, sigma
 
 
+#: Header keywords kept in ``meta``: the object and time, and what the reference frame of the
+#: spectral axis needs (SPECSYS, the target, the observatory; see dopplerkit.spectra.to_barycentric).
+META_KEYWORDS = (
+    "OBJECT",
+    "DATE-OBS",
+    "MJD-OBS",
+    "DATE-AVG",
+    "MJD-AVG",
+    "TIME-OBS",
+    "UT",
+    "EXPTIME",
+    "SPECSYS",
+    "SSYSOBS",
+    "VELOSYS",
+    "RA_OBJ",
+    "DEC_OBJ",
+    "RA",
+    "DEC",
+    "OBSGEO-X",
+    "OBSGEO-Y",
+    "OBSGEO-Z",
+)
+
+
+def _header_meta(primary, extension=None) -> dict:
+    """The :data:`META_KEYWORDS` found in the headers (the extension's, where it has one, win)."""
+    out = {}
+    for hdr in (primary, extension):
+        if hdr is None:
+            continue
+        for k in META_KEYWORDS:
+            v = hdr.get(k)
+            if isinstance(v, (str, int, float)) and not isinstance(v, bool) and not (isinstance(v, str) and not v.strip()):
+                out[k] = v
+    return out
+
+
 def read_arrays(
     path: str | Path, fmt: str | None = None, *, spectral_unit=None, flux_unit=None, medium: str | None = None
 ) -> SpectrumArrays:
@@ -455,7 +497,7 @@ def read_arrays(
         ):
             cols, units, ehdr, phdr = simple
             file_medium = ehdr.get("MEDIUM") or phdr.get("MEDIUM")
-            meta = {k: phdr[k] for k in ("OBJECT", "DATE-OBS", "MJD-OBS") if k in phdr}
+            meta = _header_meta(phdr, ehdr)
             axis, au, flux, fu, sigma = _from_table(_ArrayColumns(cols, units), path, spectral_unit, flux_unit)
         else:
             import warnings
@@ -476,7 +518,7 @@ def read_arrays(
                     axis, au, flux, fu, sigma = _from_table(_ArrayColumns(cols, units), path, spectral_unit, flux_unit)
                 else:
                     axis, au, flux, fu, sigma, file_medium = _read_wcs1d(hdul, path, spectral_unit, flux_unit)
-                meta = {k: hdul[0].header[k] for k in ("OBJECT", "DATE-OBS", "MJD-OBS") if k in hdul[0].header}
+                meta = _header_meta(hdul[0].header, hdul[1].header if fmt == "tabular-fits" else None)
     except SpectrumReadError:
         raise
     except Exception as exc:
@@ -535,7 +577,15 @@ def _read_wcs1d(hdul, path, spectral_unit, flux_unit):
             "pixel numbers are not wavelengths"
         )
     else:
-        w = WCS(hdr, naxis=1)
+        import warnings
+
+        from astropy.wcs import FITSFixedWarning
+
+        with warnings.catch_warnings():
+            # astropy's normalisations of a valid header (OBSGEO-L/B/H derived from OBSGEO-X/Y/Z, dates
+            # in the standard form) are no reason to refuse the file
+            warnings.simplefilter("ignore", FITSFixedWarning)
+            w = WCS(hdr, naxis=1)
         axis = np.asarray(w.pixel_to_world_values(np.arange(data.size)), dtype=float)
         if cunit in (None, "") and "units=angstroms" in str(hdr.get("WAT1_001", "")).lower():
             cunit = "Angstrom"  # the IRAF multispec convention: the unit is in WAT1_001
@@ -605,7 +655,8 @@ def write_spectrum(spectrum, path: str | Path, *, layout: str | None = None, dty
     """Write a Spectrum atomically: .fits (layout "tabular-fits" default, or "wcs1d-fits" for a linear grid), .ecsv, .csv.
 
     The wavelength medium (``meta["medium"]``) is kept: keyword MEDIUM (tabular FITS),
-    CTYPE1 AWAV/WAVE (1-D WCS), table meta (ECSV).
+    CTYPE1 AWAV/WAVE (1-D WCS), table meta (ECSV); so are the header keywords of
+    :data:`META_KEYWORDS` found in ``meta`` (object, time, SPECSYS, target, observatory).
 
     Parameters
     ----------
@@ -639,9 +690,10 @@ def write_spectrum(spectrum, path: str | Path, *, layout: str | None = None, dty
         if name.endswith(_FITS_EXT):
             layout = layout or "tabular-fits"
             phdr = fits.Header()
-            for k in ("OBJECT", "MJD-OBS"):
-                if k in (spectrum.meta or {}):
-                    phdr[k] = spectrum.meta[k]
+            for k in META_KEYWORDS:
+                v = (spectrum.meta or {}).get(k)
+                if isinstance(v, (str, int, float)) and not isinstance(v, bool):
+                    phdr[k] = v
             if layout == "tabular-fits":
                 cols = [
                     fits.Column(name=kind, array=np.asarray(ax.value, dtype="float64"), format="D", unit=ax.unit.to_string("fits")),
@@ -693,9 +745,10 @@ def write_spectrum(spectrum, path: str | Path, *, layout: str | None = None, dty
                 t["uncertainty"] = np.asarray(sig, dtype=dtype) * flux.unit
             if medium:
                 t.meta["medium"] = medium
-            for k in ("OBJECT", "MJD-OBS"):
-                if k in (spectrum.meta or {}):
-                    t.meta[k] = spectrum.meta[k]
+            for k in META_KEYWORDS:
+                v = (spectrum.meta or {}).get(k)
+                if isinstance(v, (str, int, float)) and not isinstance(v, bool):
+                    t.meta[k] = v
             if name.endswith(".ecsv"):
                 for c in ("flux", "uncertainty"):
                     if c in t.colnames:

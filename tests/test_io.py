@@ -206,3 +206,30 @@ def test_blank_pixels_of_an_integer_image_are_masked(tmp_path):
     fits.PrimaryHDU(data, header=hdr).writeto(tmp_path / "img.fits")
     a = read_arrays(tmp_path / "img.fits")
     assert np.isnan(a.flux[7]) and np.isfinite(np.delete(a.flux, 7)).all()
+
+
+@pytest.mark.parametrize("name,layout", [("s.fits", "tabular-fits"), ("s.fits", "wcs1d-fits"), ("s.ecsv", None)])
+def test_frame_keywords_round_trip(tmp_path, name, layout):
+    # SPECSYS (FITS WCS, Greisen et al. 2006, A&A 446, 747; from memory), the target, time and observatory
+    # survive a write and a read, so a barycentric correction can be made later (common practice, no source)
+    from astropy.nddata import StdDevUncertainty
+    from specutils import Spectrum
+
+    from dopplerkit.io import read_arrays, read_spectrum
+
+    meta = {"SPECSYS": "TOPOCENT", "RA": "16:40:00", "DEC": "-12:30:00", "DATE-OBS": "2025-05-01T03:00:00", "EXPTIME": 900.0}
+    meta |= {"OBSGEO-X": 4843319.3, "OBSGEO-Y": 2499823.5, "OBSGEO-Z": -3304672.2, "OBJECT": "DKX-9", "medium": "air"}
+    s = Spectrum(
+        flux=np.ones(50) * u.Jy,
+        spectral_axis=np.linspace(6000, 6100, 50) * u.AA,
+        uncertainty=StdDevUncertainty(np.full(50, 0.1)),
+        meta=meta,
+    )
+    path = write_spectrum(s, tmp_path / name, layout=layout)
+    got = read_arrays(path).meta
+    for k, v in meta.items():
+        if k != "medium":
+            assert got[k] == v, k
+    from dopplerkit.spectra import spectral_frame
+
+    assert spectral_frame(read_spectrum(path)) == "TOPOCENT"
