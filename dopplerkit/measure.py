@@ -35,7 +35,7 @@ from dataclasses import dataclass, field
 import astropy.units as u
 import numpy as np
 
-from .exceptions import FitAtBoundWarning, FitQualityWarning, UnresolvedLineWarning, WeakLineWarning
+from .exceptions import FitAtBoundWarning, FitQualityWarning, ReferenceFrameWarning, UnresolvedLineWarning, WeakLineWarning
 from .kinematics import SPEED_OF_LIGHT_KMS, beta_from_redshift
 
 __all__ = ["FLAGS", "PROFILES", "P_VALUE_MIN", "FitSetup", "LineFitter", "measure_lines", "spectrum_sigma"]
@@ -63,6 +63,7 @@ FLAGS = {
     "edge": "within one FWHM of an end of the spectrum (or of a gap): the line and the continuum cannot be told apart",
     "id_ambiguous": "tied lines read the other way round (line j where line i is, another z) fit about as well: z is not decided",
     "rival": "another feature in the z range, unexplained by the fit and comparable in flux, could be this component: which features are the components is not decided",
+    "topocentric": "the spectral axis is in the observer's frame (SPECSYS TOPOCENT or GEOCENTR): Earth's motion, up to 30.8 km/s, is in z and may exceed its error",
 }
 #: Goodness-of-fit threshold: a fit whose chi-square probability is below this is ``poor_fit``.
 P_VALUE_MIN = 1e-3
@@ -1992,6 +1993,34 @@ def _assess(setup, rows, info):
         r["status"] = "suspect" if r["flags"] else "ok"
 
 
+def _check_frame(rows, frame, info, advice="correct the axis first (dopplerkit.spectra.to_barycentric)"):
+    """Flag ``topocentric`` where the axis moves with the observer and Earth's motion can exceed z's error.
+
+    A frame that moves with the observer (:data:`dopplerkit.spectra.OBSERVER_FRAMES`) leaves up
+    to :data:`~dopplerkit.spectra.EARTH_MOTION_MAX_KMS` / c x (1 + z) of Earth's motion in every
+    redshift, varying over the year: a precessing jet followed for months sees it as a signal. A
+    component whose z error is below that is ``topocentric``; one note (first row) says which.
+    """
+    from .spectra import EARTH_MOTION_MAX_KMS, OBSERVER_FRAMES
+
+    info["frame"] = frame or ""
+    if frame not in OBSERVER_FRAMES or not rows:
+        return
+    hit = []
+    for r in rows:
+        shift = EARTH_MOTION_MAX_KMS / C_KMS * (1.0 + r["z"])
+        if not (r["z_err"] >= shift):
+            r["flags"].append("topocentric")
+            r["status"] = "suspect"
+            hit.append(f"{r['line']} {r['component']}")
+    text = (
+        f"the spectral axis is {frame} (SPECSYS): Earth's motion (up to {EARTH_MOTION_MAX_KMS:g} km/s, ~1e-4 in 1 + z) is in the redshifts"
+    )
+    if hit:
+        text += f", more than the z errors of {', '.join(hit)}: {advice}"
+    rows[0]["notes"].append(text)
+
+
 def _note_errors(rows, info, note):
     """Record in ``info["errors"]`` and the first row's notes how the errors were taken (see :func:`_prepare`)."""
     info["errors"] = note or "as given"
@@ -2645,6 +2674,7 @@ def _table(rows, setup, axis_unit, flux_unit, info, method):
         {
             "method": method,
             "medium": info.get("medium"),
+            "frame": info.get("frame", ""),
             "chi2": info["chi2"],
             "dof": info["dof"],
             "p_value": info["p_value"],
@@ -2681,7 +2711,7 @@ def _warn_flags(t):
             UnresolvedLineWarning,
             stacklevel=3,
         )
-    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous", "edge"}:
+    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous", "edge", "rival"}:
         msgs = [m for m in t["message"] if m]
         warnings.warn(
             f"component(s) suspect: {'; '.join(msgs)}",
@@ -2692,6 +2722,12 @@ def _warn_flags(t):
         warnings.warn(
             f"a fitted parameter sits at a bound of its range (flag 'at_bound'): {named('at_bound')}; its value and uncertainty are not meaningful",
             FitAtBoundWarning,
+            stacklevel=3,
+        )
+    if "topocentric" in flags:
+        warnings.warn(
+            f"{named('topocentric')}: {next(m for m, fl in zip(t['message'], t['flags'], strict=True) if 'topocentric' in fl).split('; ')[-1]}",
+            ReferenceFrameWarning,
             stacklevel=3,
         )
     if "poor_fit" in flags or "no_errors" in flags:
@@ -2828,7 +2864,7 @@ def measure_lines(
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is
         flagged, else "suspect"), ``flags`` (comma-separated, see :data:`FLAGS`: "at_bound",
         "no_errors", "poor_fit", "not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous",
-        "rival", "unresolved", "edge") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
+        "rival", "unresolved", "edge", "topocentric") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
 
     Notes
     -----
@@ -2854,7 +2890,7 @@ def measure_lines(
       the factor such noise implies (``meta["error_scale"]``, the message says so) and the
       detection threshold with them.
     """
-    from .spectra import spectral_medium
+    from .spectra import spectral_frame, spectral_medium
 
     if method not in ("lmfit", "fast"):
         raise ValueError(f"method must be 'lmfit' or 'fast', got {method!r}")
@@ -2884,6 +2920,7 @@ def measure_lines(
     rows, info, extra = _without_spikes(run, (rows, info, extra), x, y, sig, x_user)
     _note_errors(rows, info, note)
     _rows_to_axis(setup, rows, unit)
+    _check_frame(rows, spectral_frame(spectrum), info)
     info["medium"] = med
     for r in rows:
         r["flux"] *= fscale

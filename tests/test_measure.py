@@ -896,3 +896,39 @@ def test_overlapping_pair_z_errors_are_correlated_in_both_engines():
     # well apart, hardly correlated
     s, _, _ = jet_pair_spectrum(0.2, 40.0, seed=3)
     assert abs(measure_lines(s, "H-alpha", components=2, method="fast").meta["z_corr"][0][0][1]) < 0.2
+
+
+def test_topocentric_axis_is_flagged_until_moved_to_the_barycentre():
+    # a narrow jet pair measured to ~1e-6 in z on an axis the header says is topocentric (FITS SPECSYS,
+    # Greisen et al. 2006, A&A 446, 747; from memory): Earth's motion (up to ~30 km/s, 1e-4 in z) is in
+    # every z, so the components are suspect ('topocentric') until the axis is moved; then the invented
+    # barycentric truth comes back within the errors
+    from dopplerkit.exceptions import ReferenceFrameWarning
+    from dopplerkit.spectra import barycentric_correction, to_barycentric
+
+    meta = {"SPECSYS": "TOPOCENT", "RA": 250.0, "DEC": -12.5, "MJD-OBS": 60810.3, "OBSGEO-X": 4843319.3, "OBSGEO-Y": 2499823.5}
+    meta |= {"OBSGEO-Z": -3304672.2, "medium": "vacuum"}
+    s, za, zr = jet_pair_spectrum(0.2, 50.0, fwhm=300.0, snr=80.0, seed=3, grid=np.arange(5500.0, 8500.0, 0.5) * u.AA)
+    v = barycentric_correction(meta).to_value(u.km / u.s)
+    assert abs(v) > 5  # this date and target: a shift of many z errors
+    topo = Spectrum(flux=s.flux, spectral_axis=s.spectral_axis / (1 + v / 299792.458), uncertainty=s.uncertainty, meta=meta)
+    with pytest.warns(ReferenceFrameWarning, match="H-alpha approaching, H-alpha receding: correct the axis first"):
+        t = measure_lines(topo, "H-alpha", components=2, method="fast")
+    assert list(t["status"]) == ["suspect", "suspect"] and all("topocentric" in f for f in t["flags"])
+    assert t.meta["frame"] == "TOPOCENT" and "Earth's motion" in t["message"][0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        b = measure_lines(to_barycentric(topo), "H-alpha", components=2, method="fast")
+    assert list(b["status"]) == ["ok", "ok"] and b.meta["frame"] == "BARYCENT"
+    pulls = (np.asarray(b["z"]) - [za, zr]) / np.asarray(b["z_err"])
+    assert np.all(np.abs(pulls) < 4), pulls
+    # a z error larger than what Earth's motion can shift (30.8 km/s x (1 + z)): a note, no flag
+    from dopplerkit.measure import _check_frame
+
+    rows = [
+        {"line": "H-alpha", "component": c, "z": 0.1, "z_err": e, "flags": [], "notes": [], "status": "ok"}
+        for c, e in (("a", 2e-4), ("b", 5e-5))
+    ]
+    _check_frame(rows, "GEOCENTR", {})
+    assert [r["flags"] for r in rows] == [[], ["topocentric"]] and [r["status"] for r in rows] == ["ok", "suspect"]
+    assert "more than the z errors of H-alpha b:" in rows[0]["notes"][0]
