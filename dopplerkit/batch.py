@@ -111,7 +111,7 @@ SPECTRUM_EXTENSIONS = (".fits", ".fit", ".fts", ".fits.gz", ".ecsv", ".csv", ".t
 _ALLOWED = {
     "line": {"name", "rest", "medium", "components", "label"},
     "kinematics": {"model", "beta_max", "constraints"},
-    "spectra": {"medium", "spectral_unit", "flux_unit"},
+    "spectra": {"medium", "spectral_unit", "flux_unit", "barycentric", "observatory"},
     "fit": {"tie", "kind", "continuum", "continuum_degree", "window", "window_kms", "z_min", "z_max", "exclude"},
     "host": {"lines", "z"},
 }
@@ -151,6 +151,11 @@ class BatchConfig:
     constraints: tuple = ()
     #: ranges of the spectral axis left out of every fit: ((low, high), ...) as quantity strings
     exclude: tuple = ()
+    #: "auto": axes in the observer's frame (SPECSYS TOPOCENT/GEOCENTR) are moved to the barycentre
+    #: from their header; "none": never (such rows are flagged where Earth's motion matters)
+    barycentric: str = "auto"
+    #: (east longitude deg, latitude deg, height m) for headers without OBSGEO-X/Y/Z, or ()
+    observatory: tuple = ()
 
     def as_dict(self) -> dict:
         """The configuration as a plain dict (what workers receive)."""
@@ -161,6 +166,9 @@ class BatchConfig:
             elif k == "exclude":
                 if v:  # absent when empty: the hash of earlier configurations stays
                     out[k] = [list(p) for p in v]
+            elif k in ("barycentric", "observatory"):
+                if v != BatchConfig.__dataclass_fields__[k].default:  # absent when the default: earlier hashes stay
+                    out[k] = list(v) if isinstance(v, tuple) else v
             else:
                 out[k] = list(v) if isinstance(v, tuple) else v
         return out
@@ -361,6 +369,20 @@ def parse_config(data: dict, where: str = "config", base: str | Path | None = No
     medium = sp.get("medium")
     if medium not in (None, "air", "vacuum"):
         _err(f"{where}: [spectra] medium must be 'air' or 'vacuum', got {medium!r}")
+    barycentric = sp.get("barycentric", "auto")
+    if barycentric not in ("auto", "none"):
+        _err(
+            f"{where}: [spectra] barycentric must be 'auto' (axes in the observer's frame, SPECSYS TOPOCENT or GEOCENTR, "
+            f"moved to the barycentre from their header) or 'none', got {barycentric!r}"
+        )
+    observatory = sp.get("observatory", [])
+    if not isinstance(observatory, list) or len(observatory) not in (0, 3):
+        _err(f"{where}: [spectra] observatory must be [east longitude in deg, latitude in deg, height in m], got {observatory!r}")
+    if observatory:
+        lon = _number(where, "[spectra]", "observatory longitude", observatory[0], lo=-360, hi=360)
+        lat = _number(where, "[spectra]", "observatory latitude", observatory[1], lo=-90, hi=90)
+        height = _number(where, "[spectra]", "observatory height", observatory[2], lo=-500, hi=10000)
+        observatory = (float(lon), float(lat), float(height))
     for key in ("spectral_unit", "flux_unit"):
         if key in sp:
             import astropy.units as u
@@ -439,6 +461,8 @@ def parse_config(data: dict, where: str = "config", base: str | Path | None = No
         host_z,
         constraints,
         exclude,
+        barycentric,
+        tuple(observatory),
     )
 
 
@@ -762,6 +786,40 @@ def _object_constraints(cfg, cache, path) -> dict:
     return kw
 
 
+def _barycentric_axis(arr, axis_u, cfg: dict, cache: dict, row: dict):
+    """The spectral axis to fit and its frame (SPECSYS): with ``[spectra] barycentric = "auto"`` an
+    axis in the observer's frame whose header gives target, time and observatory is moved to the
+    barycentre (``row["v_barycentric"]``, km/s); otherwise it stays, and the frame says so."""
+    from .spectra import OBSERVER_FRAMES, _frame_axis, barycentric_correction, spectral_frame
+
+    frame = spectral_frame(arr.meta)
+    if frame is not None:
+        row["frame"] = frame
+    if frame not in OBSERVER_FRAMES:
+        return arr.axis, frame
+    if cfg.get("barycentric", "auto") != "auto":
+        row["frame_note"] = "[spectra] barycentric = 'none' keeps the observer's frame"
+        return arr.axis, frame
+    location = None
+    if cfg.get("observatory"):
+        if "_observatory" not in cache:
+            import astropy.units as u
+            from astropy.coordinates import EarthLocation
+
+            lon, lat, height = cfg["observatory"]
+            cache["_observatory"] = EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m)
+        location = cache["_observatory"]
+    try:
+        v = float(barycentric_correction(arr.meta, location=location).value)
+    except ValueError as exc:
+        why = str(exc).replace(", or location=)", "; or [spectra] observatory)")  # the batch's way to give it
+        row["frame_note"] = why
+        return arr.axis, frame
+    row["v_barycentric"] = v
+    row["frame"] = f"BARYCENT (from {frame})"
+    return _frame_axis(arr.axis, axis_u, arr.medium, v), "BARYCENT"
+
+
 def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     from .io import SpectrumReadError, detect_format, read_arrays
 
@@ -781,6 +839,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     import astropy.units as u
 
     from .io import _parse_unit
+    from .measure import _check_frame
 
     axis_u = _parse_unit(arr.axis_unit)  # parsed once per unit string (a cache): this runs for every file
     flux = arr.flux
@@ -797,6 +856,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
             "wavelength medium unknown: the file does not say (MEDIUM keyword, CTYPE1 AWAV/WAVE) and [spectra] medium is not set"
         )
     row: dict = {"axis_unit": arr.axis_unit}
+    axis, frame = _barycentric_axis(arr, axis_u, cfg, cache, row)
     if "_units" not in cache:
         cache["_units"] = _line_units(cfg)
     canon = cache["_units"]
@@ -805,7 +865,8 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     notes: list = []
     redchi, pvals, conts, hosts, scales = [], [], [], [], []
     for _lines, fitter in _fitters(cfg, arr.axis_unit, arr.medium, cache):
-        rows, info = fitter.measure(arr.axis, flux, arr.sigma)
+        rows, info = fitter.measure(axis, flux, arr.sigma)
+        _check_frame(rows, frame, info, advice=row.get("frame_note", ""))
         if info.get("host"):
             hosts.append(info["host"])
         redchi.append(info["redchi"])
@@ -877,6 +938,7 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
                 "the wrong line configured, or raise beta_max"
             )
         row.update({"beta": b, "beta_err": be, "viewing_angle": th, "viewing_angle_err": te})
+    row.pop("frame_note", None)
     row["chi2_reduced"] = float(max(redchi)) if redchi else math.nan
     row["p_value"] = float(min(pvals)) if pvals else math.nan
     row["continuum"] = "; ".join(conts)
@@ -886,6 +948,32 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
     row["status"] = "suspect" if flags else "ok"
     row["message"] = "; ".join(notes) if notes else ("; ".join(sorted(flags)) if flags else "")
     return row
+
+
+def _barycentric_spectrum(spectrum, c: dict, exclude):
+    """As :func:`_barycentric_axis` for a Spectrum: (spectrum to fit, exclude ranges still to apply).
+    Excluded ranges are in the frame of the file (a telluric band): applied as a mask before the move."""
+    import astropy.units as u
+
+    from .measure import excluded_pixels
+    from .spectra import OBSERVER_FRAMES, spectral_frame, to_barycentric
+
+    if spectral_frame(spectrum) not in OBSERVER_FRAMES or c.get("barycentric", "auto") != "auto":
+        return spectrum, exclude
+    location = None
+    if c.get("observatory"):
+        from astropy.coordinates import EarthLocation
+
+        lon, lat, height = c["observatory"]
+        location = EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m)
+    try:
+        moved = to_barycentric(spectrum, location=location)
+    except ValueError:
+        return spectrum, exclude  # measure_lines flags the components and says why
+    if exclude:
+        out = excluded_pixels(spectrum.spectral_axis.value, spectrum.spectral_axis.unit, exclude)
+        moved.mask = out if moved.mask is None else (np.asarray(moved.mask, bool) | out)
+    return moved, None
 
 
 def measure_file(path: str | Path, config) -> tuple:
@@ -904,7 +992,8 @@ def measure_file(path: str | Path, config) -> tuple:
     Returns
     -------
     spectrum : specutils.Spectrum
-        The spectrum as read (units and medium as the configuration asks).
+        The spectrum as fitted: as read (units and medium as the configuration asks), its axis
+        moved to the barycentre where the batch does so (``[spectra] barycentric``).
     table : astropy.table.QTable
         The :func:`dopplerkit.measure.measure_lines` table, rows labelled as the batch's columns.
     """
@@ -917,6 +1006,8 @@ def measure_file(path: str | Path, config) -> tuple:
     cfg = config if isinstance(config, BatchConfig) else parse_config(config) if isinstance(config, dict) else load_config(config)
     c = cfg.as_dict()
     spectrum = read_spectrum(path, spectral_unit=c["spectral_unit"], flux_unit=c["flux_unit"], medium=c["medium"])
+    exclude = [tuple(u.Quantity(q) for q in pair) for pair in c.get("exclude", ())] or None
+    spectrum, exclude = _barycentric_spectrum(spectrum, c, exclude)
     lines = _line_dicts(c)
     groups = [lines] if c["tie"] else [[ln] for ln in lines]
     tables = []
@@ -936,7 +1027,7 @@ def measure_file(path: str | Path, config) -> tuple:
             window_kms=c["window_kms"],
             host=_host_arg(c),
             host_z=c.get("host_z", 0.0),
-            exclude=[tuple(u.Quantity(q) for q in pair) for pair in c.get("exclude", ())] or None,
+            exclude=exclude,
         )
         labels = {str(o if isinstance(o, str) else ln.get("label")): ln["label"] for o, ln in zip(objs, group, strict=True)}
         t["label"] = [labels.get(str(x), str(x)) for x in t["line"]]
@@ -1204,6 +1295,7 @@ _TEXT_COLUMNS = (
     "constraints",
     "axis_unit",
     "medium",
+    "frame",
     "file_hash",
     "config_hash",
     "dopplerkit_version",
@@ -1224,6 +1316,8 @@ _TAIL_COLUMNS = [
     "flags",
     "axis_unit",
     "medium",
+    "frame",
+    "v_barycentric",
     "seconds",
     "file_size",
     "file_mtime_ns",
@@ -1283,7 +1377,9 @@ def _fill_table(source, n: int, keys=None, units=None):
         "FWHM in km/s as observed (instrumental broadening not removed), integrated line fluxes in erg/(s cm2) (photon spectra: ph/(s cm2)); "
         "error_scale: the factor line errors were scaled up by for noise correlated between neighbouring pixels (1: none); "
         "<line>_z_corr: the correlation of a pair's two redshift errors (in beta's and the angle's errors); "
-        "beta and viewing angle in the host's frame ([host] z divided out of the observed redshifts)"
+        "beta and viewing angle in the host's frame ([host] z divided out of the observed redshifts); "
+        "frame: the file's SPECSYS (BARYCENT (from TOPOCENT) where [spectra] barycentric moved the axis by v_barycentric, km/s; "
+        "z is then barycentric)"
     ]
     return t
 
@@ -1291,7 +1387,14 @@ def _fill_table(source, n: int, keys=None, units=None):
 def _column_units(colnames, line_units: dict) -> dict:
     """Column -> unit for the columns that carry one (line centres from ``line_units``: slug -> unit)."""
     out = {}
-    fixed = {"viewing_angle": "deg", "viewing_angle_err": "deg", "seconds": "s", "file_size": "byte", "file_mtime_ns": "ns"}
+    fixed = {
+        "viewing_angle": "deg",
+        "viewing_angle_err": "deg",
+        "v_barycentric": "km / s",
+        "seconds": "s",
+        "file_size": "byte",
+        "file_mtime_ns": "ns",
+    }
     for k in colnames:
         if k in fixed:
             out[k] = fixed[k]

@@ -984,3 +984,56 @@ def test_a_jet_pair_behind_a_host_redshift_is_read_in_the_host_frame(tmp_path):
     ref = u.Quantity(zk).to_value(u.km / u.s, equivalencies=u.doppler_redshift())
     assert_allclose(t["v_radial"][0].to_value(u.km / u.s), ref, rtol=1e-9)
     assert t.meta["host_z"] == zh
+
+
+def test_topocentric_files_are_moved_to_the_barycentre(tmp_path):
+    # files whose header says the axis is topocentric (FITS SPECSYS; Greisen et al. 2006, A&A 446, 747;
+    # from memory) and gives target, time and observatory are moved to the barycentre (astropy computes
+    # the correction; its own check is in test_spectra); one without the observatory stays, suspect,
+    # and says what is missing; [spectra] barycentric = "none" keeps every axis as it is
+    from dopplerkit.batch import process_chunk
+    from dopplerkit.spectra import barycentric_correction
+
+    kms = u.km / u.s
+    site = {"OBSGEO-X": 4843319.3, "OBSGEO-Y": 2499823.5, "OBSGEO-Z": -3304672.2}
+    za, zr = float(dk.redshift(0.2, 50.0)), float(dk.redshift(0.2, 130.0))
+    grid = np.arange(5500.0, 8500.0, 0.5) * u.AA
+    comps = [LineComponent("H-alpha", z=z, fwhm=300 * kms, strength=q) for z, q in ((za, 3.0), (zr, 2.0))]
+    paths, vs = [], []
+    for k, keys in enumerate((site, {})):
+        from specutils import Spectrum
+
+        s = synthesize_spectrum(grid, comps, snr=80, seed=k, resolution=20000)
+        meta = {"SPECSYS": "TOPOCENT", "RA": "16:40:00", "DEC": "-12:30:00", "MJD-OBS": 60810.3 + 40 * k, "medium": "vacuum"} | keys
+        v = barycentric_correction(meta | site).to_value(kms)
+        topo = Spectrum(flux=s.flux, spectral_axis=grid / (1 + v / 299792.458), uncertainty=s.uncertainty, meta=meta)
+        paths.append(str(tmp_path / f"epoch{k}.fits"))
+        write_spectrum(topo, paths[-1])
+        vs.append(v)
+    base = {"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "jet-pair"}, "spectra": {"medium": "vacuum"}}
+    assert parse_config(base).hash == parse_config({**base, "spectra": {"medium": "vacuum", "barycentric": "auto"}}).hash
+    moved, kept = process_chunk(paths, [None, None], parse_config(base).as_dict())
+    assert moved["status"] == "ok" and moved["frame"] == "BARYCENT (from TOPOCENT)", moved["message"]
+    assert_allclose(moved["v_barycentric"], vs[0], atol=1e-6)
+    assert abs(moved["h_alpha_approaching_z"] - za) < 4 * moved["h_alpha_approaching_z_err"]
+    assert abs(moved["beta"] - 0.2) < 4 * moved["beta_err"]
+    assert kept["status"] == "suspect" and "topocentric" in kept["flags"] and kept["frame"] == "TOPOCENT"
+    assert "lacks the observatory (OBSGEO-X/Y/Z in metres; or [spectra] observatory)" in kept["message"]
+    # the observatory given in the configuration (the invented site above, as longitude, latitude, height)
+    from astropy.coordinates import EarthLocation
+
+    geo = EarthLocation.from_geocentric(*site.values(), unit=u.m).to_geodetic()
+    where = [float(geo.lon.deg), float(geo.lat.deg), float(geo.height.to_value(u.m))]
+    cfg = parse_config({**base, "spectra": {"medium": "vacuum", "observatory": where}})
+    assert cfg.hash != parse_config(base).hash
+    row = process_chunk(paths[1:], [None], cfg.as_dict())[0]
+    assert row["status"] == "ok" and abs(row["v_barycentric"] - vs[1]) < 1e-3, row["message"]
+    off = process_chunk(paths[:1], [None], parse_config({**base, "spectra": {"medium": "vacuum", "barycentric": "none"}}).as_dict())[0]
+    assert off["status"] == "suspect" and "barycentric = 'none' keeps the observer's frame" in off["message"]
+    for bad, match in (
+        ({"barycentric": "yes"}, "barycentric must be 'auto'"),
+        ({"observatory": [1.0, 2.0]}, r"observatory must be \[east longitude in deg, latitude in deg, height in m\]"),
+        ({"observatory": [1.0, 95.0, 0.0]}, "observatory latitude must be <= 90"),
+    ):
+        with pytest.raises(ConfigError, match=match):
+            parse_config({**base, "spectra": {"medium": "vacuum", **bad}})
