@@ -28,6 +28,10 @@ Physics (conventions of :mod:`dopplerkit.kinematics`)
 Air wavelength axes (``meta["medium"] == "air"`` or FITS CTYPE ``AWAV``) are converted to
 vacuum, shifted, and converted back (Morton 2000), since a Doppler shift scales vacuum
 wavelengths.
+
+The observer's own motion: :func:`spectral_frame` reads the frame of the axis (FITS
+``SPECSYS``); :func:`to_barycentric` moves an axis in the observer's frame to the solar-system
+barycentre, with the correction :func:`barycentric_correction` computes from the header (astropy).
 """
 
 from __future__ import annotations
