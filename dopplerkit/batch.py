@@ -1793,6 +1793,7 @@ _WORKER_MODULES = (
     "dopplerkit.batch",
     "dopplerkit.measure",
     "dopplerkit.io",
+    "dopplerkit.spectra",  # the frame of the axis (SPECSYS) is read for every file
     "dopplerkit.lines",
     "astropy.io.fits",
     "astropy.io.misc.yaml",  # ECSV headers

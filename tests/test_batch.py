@@ -163,7 +163,10 @@ def test_output_formats(survey, tmp_path):
 def test_config_errors(tmp_path, survey):
     bad = tmp_path / "bad.toml"
     bad.write_text(CONFIG + "colour = 3\n")
-    with pytest.raises(ConfigError, match=r"\[spectra\]: unknown key\(s\) 'colour'; allowed: \['flux_unit', 'medium', 'spectral_unit'\]"):
+    with pytest.raises(
+        ConfigError,
+        match=r"\[spectra\]: unknown key\(s\) 'colour'; allowed: \['barycentric', 'flux_unit', 'medium', 'observatory', 'spectral_unit'\]",
+    ):
         load_config(bad)
     with pytest.raises(ConfigError, match=r"model must be one of \['jet-pair', 'none'\], got 'cone'"):
         parse_config({"line": [{"name": "H-alpha", "components": 2}], "kinematics": {"model": "cone"}})
