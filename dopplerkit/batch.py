@@ -786,6 +786,17 @@ def _object_constraints(cfg, cache, path) -> dict:
     return kw
 
 
+def _observatory(cfg: dict):
+    """``[spectra] observatory`` as an astropy EarthLocation, or None when not given."""
+    if not cfg.get("observatory"):
+        return None
+    import astropy.units as u
+    from astropy.coordinates import EarthLocation
+
+    lon, lat, height = cfg["observatory"]
+    return EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m)
+
+
 def _barycentric_axis(arr, axis_u, cfg: dict, cache: dict, row: dict):
     """The spectral axis to fit and its frame (SPECSYS): with ``[spectra] barycentric = "auto"`` an
     axis in the observer's frame whose header gives target, time and observatory is moved to the
@@ -800,17 +811,10 @@ def _barycentric_axis(arr, axis_u, cfg: dict, cache: dict, row: dict):
     if cfg.get("barycentric", "auto") != "auto":
         row["frame_note"] = "[spectra] barycentric = 'none' keeps the observer's frame"
         return arr.axis, frame
-    location = None
-    if cfg.get("observatory"):
-        if "_observatory" not in cache:
-            import astropy.units as u
-            from astropy.coordinates import EarthLocation
-
-            lon, lat, height = cfg["observatory"]
-            cache["_observatory"] = EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m)
-        location = cache["_observatory"]
+    if "_observatory" not in cache:
+        cache["_observatory"] = _observatory(cfg)
     try:
-        v = float(barycentric_correction(arr.meta, location=location).value)
+        v = float(barycentric_correction(arr.meta, location=cache["_observatory"]).value)
     except ValueError as exc:
         why = str(exc).replace(", or location=)", "; or [spectra] observatory)")  # the batch's way to give it
         row["frame_note"] = why
@@ -953,21 +957,13 @@ def _fit_one(path: str, fmt: str | None, cfg: dict, cache: dict) -> dict:
 def _barycentric_spectrum(spectrum, c: dict, exclude):
     """As :func:`_barycentric_axis` for a Spectrum: (spectrum to fit, exclude ranges still to apply).
     Excluded ranges are in the frame of the file (a telluric band): applied as a mask before the move."""
-    import astropy.units as u
-
     from .measure import excluded_pixels
     from .spectra import OBSERVER_FRAMES, spectral_frame, to_barycentric
 
     if spectral_frame(spectrum) not in OBSERVER_FRAMES or c.get("barycentric", "auto") != "auto":
         return spectrum, exclude
-    location = None
-    if c.get("observatory"):
-        from astropy.coordinates import EarthLocation
-
-        lon, lat, height = c["observatory"]
-        location = EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m)
     try:
-        moved = to_barycentric(spectrum, location=location)
+        moved = to_barycentric(spectrum, location=_observatory(c))
     except ValueError:
         return spectrum, exclude  # measure_lines flags the components and says why
     if exclude:

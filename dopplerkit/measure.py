@@ -2008,6 +2008,8 @@ def _check_frame(rows, frame, info, advice="correct the axis first (dopplerkit.s
         return
     hit = []
     for r in rows:
+        if not np.isfinite(r["z"]):
+            continue  # no redshift to be off (the row is flagged for that already)
         shift = EARTH_MOTION_MAX_KMS / C_KMS * (1.0 + r["z"])
         if not (r["z_err"] >= shift):
             r["flags"].append("topocentric")

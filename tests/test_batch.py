@@ -1021,6 +1021,12 @@ def test_topocentric_files_are_moved_to_the_barycentre(tmp_path):
     assert abs(moved["h_alpha_approaching_z"] - za) < 4 * moved["h_alpha_approaching_z_err"]
     assert abs(moved["beta"] - 0.2) < 4 * moved["beta_err"]
     assert kept["status"] == "suspect" and "topocentric" in kept["flags"] and kept["frame"] == "TOPOCENT"
+    # the single-row view measures what the batch measured
+    from dopplerkit.batch import measure_file
+
+    spec, tab = measure_file(paths[0], base)
+    assert spec.meta["SPECSYS"] == "BARYCENT" and list(tab["status"]) == ["ok", "ok"]
+    assert_allclose(tab["z"][0], moved["h_alpha_approaching_z"], rtol=0, atol=1e-9)
     assert "lacks the observatory (OBSGEO-X/Y/Z in metres; or [spectra] observatory)" in kept["message"]
     # the observatory given in the configuration (the invented site above, as longitude, latitude, height)
     from astropy.coordinates import EarthLocation
