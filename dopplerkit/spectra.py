@@ -767,7 +767,7 @@ def to_barycentric(spectrum, correction=None, *, location=None):
     return Spectrum(
         flux=spectrum.flux,
         spectral_axis=new_axis,
-        uncertainty=copy.deepcopy(spectrum.uncertainty),
+        uncertainty=_uncertainty(spectrum.uncertainty, 1.0),  # a copy of its own type
         mask=None if spectrum.mask is None else np.array(spectrum.mask, copy=True),
         meta=meta,
     )
