@@ -431,6 +431,9 @@ META_KEYWORDS = (
     "OBSGEO-X",
     "OBSGEO-Y",
     "OBSGEO-Z",
+    "OBSGEO-L",
+    "OBSGEO-B",
+    "OBSGEO-H",
 )
 
 

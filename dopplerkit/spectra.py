@@ -645,7 +645,8 @@ def barycentric_correction(spectrum, *, location=None) -> u.Quantity:
         (``RA_OBJ``/``DEC_OBJ`` or ``RA``/``DEC``: ICRS degrees, or sexagesimal strings with RA
         in hours), the time (``MJD-AVG``/``DATE-AVG``, or ``MJD-OBS``/``DATE-OBS`` shifted by
         half of ``EXPTIME``; UTC) and, for a topocentric axis, the observatory
-        (``OBSGEO-X/Y/Z``, geocentric metres) unless ``location`` is given. A geocentric axis
+        (``OBSGEO-X/Y/Z``, geocentric metres; or ``OBSGEO-L/B/H``, east longitude and latitude
+        in deg, height in m) unless ``location`` is given. A geocentric axis
         (``SPECSYS = 'GEOCENTR'``) is corrected from the Earth's centre.
     location : astropy.coordinates.EarthLocation, optional
         The observatory, where the header does not give it.
@@ -685,13 +686,20 @@ def barycentric_correction(spectrum, *, location=None) -> u.Quantity:
             location = EarthLocation.from_geodetic(0.0 * u.deg, 90.0 * u.deg, 0.0 * u.m)
         else:
             xyz = [_keyword(meta, f"OBSGEO-{c}") for c in "XYZ"]
-            if any(v is None for v in xyz):
-                missing.append("the observatory (OBSGEO-X/Y/Z in metres, or location=)")
-            else:
+            lbh = [_keyword(meta, f"OBSGEO-{c}") for c in "LBH"]
+            if all(v is not None for v in xyz):
                 try:
                     location = EarthLocation.from_geocentric(*(float(v) for v in xyz), unit=u.m)
                 except (TypeError, ValueError) as exc:
                     raise ValueError(f"header OBSGEO-X/Y/Z = {xyz!r} must be geocentric coordinates in metres") from exc
+            elif all(v is not None for v in lbh):
+                try:
+                    lon, lat, height = (float(v) for v in lbh)
+                    location = EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m)
+                except (TypeError, ValueError, u.UnitsError) as exc:
+                    raise ValueError(f"header OBSGEO-L/B/H = {lbh!r} must be east longitude and latitude in deg, height in m") from exc
+            else:
+                missing.append("the observatory (OBSGEO-X/Y/Z in metres or OBSGEO-L/B/H, or location=)")
     if missing:
         raise ValueError("cannot compute the barycentric correction: the header lacks " + "; ".join(missing))
     if not isinstance(location, EarthLocation):

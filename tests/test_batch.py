@@ -1027,7 +1027,7 @@ def test_topocentric_files_are_moved_to_the_barycentre(tmp_path):
     spec, tab = measure_file(paths[0], base)
     assert spec.meta["SPECSYS"] == "BARYCENT" and list(tab["status"]) == ["ok", "ok"]
     assert_allclose(tab["z"][0], moved["h_alpha_approaching_z"], rtol=0, atol=1e-9)
-    assert "lacks the observatory (OBSGEO-X/Y/Z in metres; or [spectra] observatory)" in kept["message"]
+    assert "lacks the observatory (OBSGEO-X/Y/Z in metres or OBSGEO-L/B/H; or [spectra] observatory)" in kept["message"]
     # the observatory given in the configuration (the invented site above, as longitude, latitude, height)
     from astropy.coordinates import EarthLocation
 

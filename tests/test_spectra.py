@@ -306,13 +306,23 @@ def test_barycentric_correction_header_forms():
     # a geocentric axis needs no observatory: it differs from the topocentric one by Earth's rotation (<= 0.47 km/s)
     geo = {k: val for k, val in _topo_meta().items() if not k.startswith("OBSGEO")} | {"SPECSYS": "GEOCENTR"}
     assert 0 < abs(bc(geo).value - v) < 0.47
+    # the observatory as longitude, latitude and height (OBSGEO-L/B/H) instead of X/Y/Z
+    from astropy.coordinates import EarthLocation
+
+    geo = EarthLocation.from_geocentric(_SITE["OBSGEO-X"], _SITE["OBSGEO-Y"], _SITE["OBSGEO-Z"], unit=u.m).to_geodetic()
+    lbh = {k: val for k, val in _topo_meta().items() if not k.startswith("OBSGEO")}
+    lbh |= {"OBSGEO-L": float(geo.lon.deg), "OBSGEO-B": float(geo.lat.deg), "OBSGEO-H": float(geo.height.to_value(u.m))}
+    assert abs(bc(lbh).value - v) < 1e-6
     # date and time in two keywords (older headers)
     split = _topo_meta(**{"DATE-OBS": "2025-03-10", "TIME-OBS": "04:12:00"})
     assert abs(bc(split).value - v) < 1e-3
     with pytest.raises(ValueError, match=r"DATE-OBS = '2025-03-10' gives the date only"):
         bc(_topo_meta(**{"DATE-OBS": "2025-03-10"}))
     bare = {"SPECSYS": "TOPOCENT"}
-    with pytest.raises(ValueError, match=r"lacks the target \(RA_OBJ/DEC_OBJ or RA/DEC\); the time .*; the observatory \(OBSGEO-X/Y/Z"):
+    with pytest.raises(
+        ValueError,
+        match=r"lacks the target \(RA_OBJ/DEC_OBJ or RA/DEC\); the time .*; the observatory \(OBSGEO-X/Y/Z in metres or OBSGEO-L/B/H",
+    ):
         bc(bare)
     with pytest.raises(ValueError, match=r"header RA = 'north' is neither degrees nor a sexagesimal angle"):
         bc(_topo_meta(RA="north"))
