@@ -2727,11 +2727,8 @@ def _warn_flags(t):
             stacklevel=3,
         )
     if "topocentric" in flags:
-        warnings.warn(
-            f"{named('topocentric')}: {next(m for m, fl in zip(t['message'], t['flags'], strict=True) if 'topocentric' in fl).split('; ')[-1]}",
-            ReferenceFrameWarning,
-            stacklevel=3,
-        )
+        said = next(part for m in t["message"] for part in m.split("; ") if "(SPECSYS)" in part)
+        warnings.warn(f"{named('topocentric')}: {said}", ReferenceFrameWarning, stacklevel=3)
     if "poor_fit" in flags or "no_errors" in flags:
         warnings.warn(
             f"{t['message'][0] or 'uncertainties are not finite or zero (flag no_errors)'}: the errors of these components are not trustworthy",
