@@ -63,6 +63,7 @@ FLAGS = {
     "edge": "within one FWHM of an end of the spectrum (or of a gap): the line and the continuum cannot be told apart",
     "id_ambiguous": "tied lines read the other way round (line j where line i is, another z) fit about as well: z is not decided",
     "rival": "another feature in the z range, unexplained by the fit and comparable in flux, could be this component: which features are the components is not decided",
+    "unpaired": "another component of the line is not detected: this one's label (approaching or receding, given by increasing z) is not decided by the data; its z and flux stand",
     "topocentric": "the spectral axis is in the observer's frame (SPECSYS TOPOCENT or GEOCENTR): Earth's motion, up to 30.8 km/s, is in z and may exceed its error",
 }
 #: Goodness-of-fit threshold: a fit whose chi-square probability is below this is ``poor_fit``.
@@ -1219,9 +1220,12 @@ def _flag_undetected(rows, gi, k, dchi2, need):
                 )
     if flag == "not_detected":
         # components are labelled by increasing z: with one of them absent, the others' labels
-        # (approaching/receding) are not decided by the data, though their values may be right
+        # (approaching/receding) are not decided by the data, though their values may be right;
+        # a row read by its label (the receding jet's z) would be confidently wrong: 'unpaired'
         for r in rows:
             if r["group"] == gi and r["k"] != k:
+                if "unpaired" not in r["flags"]:
+                    r["flags"].append("unpaired")
                 r["notes"].append(
                     f"{r['line']} {r['component']}: labelled by increasing z beside a component that is not detected; "
                     "which jet it belongs to is not decided by the data"
@@ -2713,7 +2717,7 @@ def _warn_flags(t):
             UnresolvedLineWarning,
             stacklevel=3,
         )
-    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous", "edge", "rival"}:
+    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous", "edge", "rival", "unpaired"}:
         msgs = [m for m in t["message"] if m]
         warnings.warn(
             f"component(s) suspect: {'; '.join(msgs)}",
@@ -2863,7 +2867,7 @@ def measure_lines(
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is
         flagged, else "suspect"), ``flags`` (comma-separated, see :data:`FLAGS`: "at_bound",
         "no_errors", "poor_fit", "not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous",
-        "rival", "unresolved", "edge", "topocentric") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
+        "rival", "unresolved", "edge", "unpaired", "topocentric") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
 
     Notes
     -----

@@ -189,6 +189,9 @@ def test_a_lone_jet_line_is_not_given_a_jet_by_its_label(method):
     found = int(np.argmin([abs(z + 0.05) for z in t["z"]]))
     assert "not_detected" in t["flags"][1 - found]
     assert "which jet it belongs to is not decided" in t["message"][found]
+    # its z is right, but read by its label it could be the other jet's: not ok
+    assert abs(t["z"][found] + 0.05) < 3 * t["z_err"][found]
+    assert t["status"][found] == "suspect" and "unpaired" in t["flags"][found]
 
 
 def test_profiles_lorentzian_voigt():
