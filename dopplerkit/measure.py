@@ -55,7 +55,7 @@ FLAGS = {
     "no_errors": "the uncertainty is not finite or is zero",
     "poor_fit": "the chi-square probability of the fit is below 1e-3 for its degrees of freedom: the model or the errors are wrong",
     "not_detected": "the data do not need this component (BIC): it may be absent or part of a blend",
-    "blend": "closer to another component than 0.85 FWHM (no dip between them): their centres are not separately determined",
+    "blend": "closer to another component than 0.85 FWHM (no dip between them), or on a line of another component's gas that would pull its centre or carry much of its flux: not separately determined",
     "id_contradicted": "another line of the same gas is missing where this identification puts it",
     "id_alternative": "another catalogue line explains the features better: its companions appear where it puts them, this line's do not",
     "unresolved": "narrower than two pixels: its width and centre error are not trustworthy",
@@ -2082,12 +2082,20 @@ def _sibling_bound(setup, name, zb, fwhm, x, y, sig, others) -> float:
     return bound
 
 
+def _overlap_trouble(offset, f_other, f_line, centre_err) -> bool:
+    """A line of flux ``f_other`` at ``offset`` from a measured one (flux ``f_line``) would pull its
+    centre by more than its error, or could carry RIVAL_FRACTION or more of its flux."""
+    return offset * f_other / (f_line + f_other) > centre_err or f_other > RIVAL_FRACTION * f_line
+
+
 def _check_overlaps(setup, rows, x, y, sig, fitted, also=()):
     """Flag ``blend`` where a line of the same gas from another component would pull a measured centre by more than its error.
 
     The other line's flux is taken from that component's measured line and a generous ratio
     (``_SAME_GAS``), or, where a sibling of it is measured clear of everything (``_SIBLINGS``),
-    from that measurement.
+    from that measurement. Where it could carry :data:`RIVAL_FRACTION` or more of the measured
+    flux the component is a ``blend`` too, however small the pull: the feature may be that line
+    alone (a receding H-beta where an approaching H-alpha could be, the real one off the spectrum).
     """
     if not setup.same_gas:
         return
@@ -2108,18 +2116,32 @@ def _check_overlaps(setup, rows, x, y, sig, fitted, also=()):
                 if name == r["line"] or offset > fw or f"{name} ({label})" in also:
                     continue  # (a line fitted beside this one, at its component's z, is modelled, not a hidden blend)
                 f_other = abs(fb) * q / ratio[lb]
-                if offset * f_other / (abs(r["flux"]) + f_other) > r["centre_err"]:
+                f_line = abs(r["flux"])
+                if _overlap_trouble(offset, f_other, f_line, r["centre_err"]):
                     f_other = min(f_other, _sibling_bound(setup, name, zb, fwhm_of[(g, k)], x, y, sig, fitted))
-                pull = offset * f_other / (abs(r["flux"]) + f_other)
-                if pull > r["centre_err"] and pull > worst.get((name, label), (0.0,))[0]:
-                    worst[(name, label)] = (pull, pos)
-        for (name, label), (pull, pos) in worst.items():
+                pull = offset * f_other / (f_line + f_other)
+                # near the other line's position a blend cannot pull the centre, but the feature may be
+                # that line in good part (or alone): a share of the measured flux it could carry
+                share = f_other / f_line if f_line > 0 else np.inf
+                if (
+                    _overlap_trouble(offset, f_other, f_line, r["centre_err"])
+                    and (pull, share) > worst.get((name, label), (0.0, 0.0, 0.0))[:2]
+                ):
+                    worst[(name, label)] = (pull, share, pos)
+        for (name, label), (pull, share, pos) in worst.items():
             if "blend" not in r["flags"]:
                 r["flags"].append("blend")
-            r["notes"].append(
-                f"{r['line']} {r['component']} at {r['centre']:.6g} may be blended with {name} of the {label} component "
-                f"(expected at {pos:.6g}): its centre could be pulled by up to {pull:.2g}, more than its error {r['centre_err']:.2g}"
-            )
+            if pull > r["centre_err"]:
+                r["notes"].append(
+                    f"{r['line']} {r['component']} at {r['centre']:.6g} may be blended with {name} of the {label} component "
+                    f"(expected at {pos:.6g}): its centre could be pulled by up to {pull:.2g}, more than its error {r['centre_err']:.2g}"
+                )
+            else:
+                r["notes"].append(
+                    f"{r['line']} {r['component']} at {r['centre']:.6g} may be, in good part or alone, {name} of the {label} "
+                    f"component (expected at {pos:.6g} with up to {min(share, 99):.2g} times this feature's flux): which line "
+                    "the feature is, and its flux, are not decided"
+                )
 
 
 def _row(s, lidx, k, z, ze, w, we, area, area_err, at_bound, dx, group=0):
