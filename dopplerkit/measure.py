@@ -63,6 +63,7 @@ FLAGS = {
     "edge": "within one FWHM of an end of the spectrum (or of a gap): the line and the continuum cannot be told apart",
     "id_ambiguous": "tied lines read the other way round (line j where line i is, another z) fit about as well: z is not decided",
     "rival": "another feature in the z range, unexplained by the fit and comparable in flux, could be this component: which features are the components is not decided",
+    "unphysical_pair": "the two components' redshifts cannot come from two equal-speed opposite jets ((1 + z_a)(1 + z_r) below (1 + host_z)**2): one feature is probably another line",
     "unpaired": "another component of the line is not detected: this one's label (approaching or receding, given by increasing z) is not decided by the data; its z and flux stand",
     "topocentric": "the spectral axis is in the observer's frame (SPECSYS TOPOCENT or GEOCENTR): Earth's motion, up to 30.8 km/s, is in z and may exceed its error",
 }
@@ -97,18 +98,21 @@ _SAME_GAS_WEAKER = {"He I 7065": 0.05, "He I 4471": 0.04}
 # [O III] 5007/4959 = 2.98 and [N II] 6585/6550 = 2.94 are fixed by atomic physics (Storey & Zeippen
 # 2000, MNRAS 312, 813), +-15% here. He I 6678/5876 = 0.28 in case B (Benjamin, Skillman & Smits
 # 1999, ApJ 514, 307); gas that shows He I recombination shows H-alpha several times stronger
-# (He/H ~ 0.1 by number; common practice, no source). The Mg II and C IV doublets lie between
+# (He/H ~ 0.1 by number; common practice, no source). He I 5876/H-beta is ~0.1-0.15 in nebulae
+# (Osterbrock & Ferland 2006; from memory) and up to ~1 in jets (common practice, no source): a
+# generous [1/30, 2] makes each the other's (not required) evidence, so that two features read as
+# two components of one line are also tested as H-beta and He I 5876 of ONE component. The Mg II and C IV doublets lie between
 # 2:1 (optically thin, the ratio of oscillator strengths) and 1:1 (thick): common practice, no source.
 _EVIDENCE = {
     "H-alpha": (("H-beta", 0.05, 0.45, False), ("H-gamma", 0.02, 0.22, False)),
-    "H-beta": (("H-alpha", 2.5, 20.0, True), ("H-gamma", 0.2, 0.55, False)),
+    "H-beta": (("H-alpha", 2.5, 20.0, True), ("H-gamma", 0.2, 0.55, False), ("He I 5876", 1 / 30, 2.0, False)),
     "H-gamma": (("H-beta", 1.9, 8.0, True), ("H-alpha", 5.4, 60.0, True)),
     "H-delta": (("H-beta", 3.4, 15.0, True), ("H-alpha", 9.7, 100.0, True)),
     "[O III] 5007": (("[O III] 4959", 0.29, 0.39, True),),
     "[O III] 4959": (("[O III] 5007", 2.55, 3.45, True),),
     "[N II] 6585": (("[N II] 6550", 0.29, 0.39, True), ("H-alpha", 0.1, 20.0, False)),
     "[N II] 6550": (("[N II] 6585", 2.5, 3.4, True), ("H-alpha", 0.3, 60.0, False)),
-    "He I 5876": (("H-alpha", 2.0, 100.0, True), ("He I 6678", 0.1, 0.5, False)),
+    "He I 5876": (("H-alpha", 2.0, 100.0, True), ("He I 6678", 0.1, 0.5, False), ("H-beta", 0.5, 30.0, False)),
     "He I 6678": (("H-alpha", 5.0, 300.0, True), ("He I 5876", 1.0, 6.0, False)),
     "Mg II 2796": (("Mg II 2803", 0.4, 1.1, True),),
     "Mg II 2803": (("Mg II 2796", 0.9, 2.5, True),),
@@ -1091,6 +1095,7 @@ class LineFitter:
         _check_identification(s, rows, x, y, sigma * f, host=host, also=extra)
         _check_swaps(s, rows, x, y, sigma, cont, host, self.window, self.window_kms, f * f)
         _check_rivals(s, rows, x, y, sigma * f, cont if cont is not None else _median_continuum(x, y), host)
+        _check_pair(s, rows)
         _check_edges(rows, x)
         _assess(s, rows, info)
         return rows, info
@@ -2034,6 +2039,39 @@ def _note_errors(rows, info, note):
         rows[0]["notes"].append(note)
 
 
+def _check_pair(setup, rows):
+    """Flag ``unphysical_pair`` where a jet pair's redshifts cannot come from two equal-speed opposite jets.
+
+    Such jets give 1 + z = Gamma (1 -+ beta cos theta) (1 + host_z), so (1 + z_a)(1 + z_r) =
+    Gamma**2 (1 - beta**2 cos**2 theta) (1 + host_z)**2 >= (1 + host_z)**2: the transverse Doppler
+    effect keeps the product at or above 1 whatever the angle (Margon 1984, ARA&A 22, 507). A pair more than _ID_SIGMA sigma below that is not two jets in this line: one feature
+    is probably another line (a Balmer or He I line of the other jet, the real one off the
+    spectrum). Pairs with a component not detected are left to that flag.
+    """
+    if not setup.jet_pair:
+        return
+    hz2 = (1.0 + setup.host_z) ** 2
+    for gi in range(len(setup.groups)):
+        mine = [r for r in rows if r["group"] == gi]
+        comp = {}
+        for r in mine:
+            comp.setdefault(r["k"], (r["z"], r["z_err"]))
+        if len(comp) != 2 or any("not_detected" in r["flags"] for r in mine):
+            continue
+        (za, ea), (zr, er) = comp[0], comp[1]
+        prod = (1 + za) * (1 + zr) / hz2
+        err = math.hypot((1 + zr) * ea, (1 + za) * er) / hz2
+        if not (math.isfinite(prod) and math.isfinite(err)) or prod >= 1 - _ID_SIGMA * err:
+            continue
+        for r in mine:
+            r["flags"].append("unphysical_pair")
+        mine[0]["notes"].append(
+            f"{mine[0]['line']}: (1 + z_a)(1 + z_r) = {prod:.5f} +- {err:.1g} in the host's frame, below 1: no two equal-speed jets "
+            "give that (the transverse Doppler effect keeps it >= 1); one feature is probably another line (of the other jet's gas, "
+            "its own line off the spectrum)"
+        )
+
+
 def _check_edges(rows, x):
     """Flag ``edge`` for a component centred within one FWHM of an end of the covered range or of a gap in it."""
     if x.size < 2:
@@ -2568,6 +2606,7 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
     _check_identification(setup, rows, x, y, sig * f, host=host, also=also)
     _check_swaps(setup, rows, x, y, sig, cont0, host, window, window_kms, f * f)
     _check_rivals(setup, rows, x, y, sig * f, cont0, host)
+    _check_pair(setup, rows)
     _check_edges(rows, x)
     _assess(setup, rows, info)
     return rows, info, result
@@ -2739,7 +2778,18 @@ def _warn_flags(t):
             UnresolvedLineWarning,
             stacklevel=3,
         )
-    if flags & {"not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous", "edge", "rival", "unpaired"}:
+    if flags & {
+        "not_detected",
+        "faint",
+        "blend",
+        "id_contradicted",
+        "id_alternative",
+        "id_ambiguous",
+        "edge",
+        "rival",
+        "unpaired",
+        "unphysical_pair",
+    }:
         msgs = [m for m in t["message"] if m]
         warnings.warn(
             f"component(s) suspect: {'; '.join(msgs)}",
@@ -2889,7 +2939,7 @@ def measure_lines(
         probability of the fit for its degrees of freedom), ``status`` ("ok" when nothing is
         flagged, else "suspect"), ``flags`` (comma-separated, see :data:`FLAGS`: "at_bound",
         "no_errors", "poor_fit", "not_detected", "faint", "blend", "id_contradicted", "id_alternative", "id_ambiguous",
-        "rival", "unresolved", "edge", "unpaired", "topocentric") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
+        "rival", "unresolved", "edge", "unpaired", "unphysical_pair", "topocentric") and ``message`` (why, in words). Flags also raise warnings of the DopplerkitWarning family.
 
     Notes
     -----
