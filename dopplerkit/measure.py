@@ -64,7 +64,7 @@ FLAGS = {
     "id_ambiguous": "tied lines read the other way round (line j where line i is, another z) fit about as well: z is not decided",
     "rival": "another feature in the z range, unexplained by the fit and comparable in flux, could be this component: which features are the components is not decided",
     "unphysical_pair": "the two components' redshifts cannot come from two equal-speed opposite jets ((1 + z_a)(1 + z_r) below (1 + host_z)**2): one feature is probably another line",
-    "unpaired": "another component of the line is not detected: this one's label (approaching or receding, given by increasing z) is not decided by the data; its z and flux stand",
+    "unpaired": "another component of the line is not detected, or may be another line of this one's gas alone: this one's label (approaching or receding, given by increasing z) is not decided by the data; its z and flux stand",
     "topocentric": "the spectral axis is in the observer's frame (SPECSYS TOPOCENT or GEOCENTR): Earth's motion, up to 30.8 km/s, is in z and may exceed its error",
 }
 #: Goodness-of-fit threshold: a fit whose chi-square probability is below this is ``poor_fit``.
@@ -1953,12 +1953,26 @@ def _check_rivals(setup, rows, x, y, sig, cont, host=None):
 def _flag_dependants(setup, rows, z_same, z_other, undecided):
     """Flag ``id_ambiguous`` every other component whose z moves by more than its error between
     the two readings of the ``undecided`` (group, component): fitted together, its value depends
-    on which reading is right (a line of the other reading may sit on it, unmodelled)."""
+    on which reading is right (a line of the other reading may sit on it, unmodelled), or whose
+    label changes (components are labelled by increasing z: the other reading may put the
+    undecided one on this one's other side)."""
     k = undecided[1]
     for r in rows:
         g, c = r["group"], r["k"]
         if (g, c) == undecided or "id_ambiguous" in r["flags"]:
             continue
+        if g == undecided[0]:
+            rank_same = int(np.argsort(np.argsort(np.asarray(z_same[g], float)))[c])
+            rank_other = int(np.argsort(np.argsort(np.asarray(z_other[g], float)))[c])
+            if rank_same != rank_other:
+                for q in rows:
+                    if q["group"] == g and q["k"] == c:
+                        q["flags"].append("id_ambiguous")
+                r["notes"].append(
+                    f"{r['line']} {r['component']}: read the other way, the {setup.labels[k]} component lies on this one's other "
+                    f"side in z: which jet this one belongs to (its label, by increasing z) is not decided"
+                )
+                continue
         moved = abs(float(z_other[g][c]) - float(z_same[g][c]))
         if np.isfinite(moved) and moved > r["z_err"]:
             for q in rows:
@@ -2039,6 +2053,28 @@ def _note_errors(rows, info, note):
         rows[0]["notes"].append(note)
 
 
+def _label_in_doubt(mine):
+    """Flag ``unpaired`` the component of a pair whose partner may be another line altogether.
+
+    Components are labelled by increasing z. Where the partner's feature may be, alone, a line of
+    the other component's gas (a blend that could carry its whole flux), the two features may be
+    one jet seen in two lines: this one's label (approaching or receding) is then not decided by
+    the data either (found with a tied H-alpha + He I 5876 pair whose approaching jet lay off the
+    spectrum: the receding jet came out 'approaching', ok, thousands of sigma off).
+    """
+    doubt = {r["k"] for r in mine if r.get("maybe_other")}
+    if len(doubt) != 1:
+        return
+    for r in mine:
+        if r["k"] in doubt or "unpaired" in r["flags"] or "not_detected" in r["flags"]:
+            continue
+        r["flags"].append("unpaired")
+        r["notes"].append(
+            f"{r['line']} {r['component']}: labelled by increasing z beside a component whose feature may be another line "
+            "of this one's gas; which jet it belongs to is not decided by the data"
+        )
+
+
 def _check_pair(setup, rows):
     """Flag ``unphysical_pair`` where a jet pair's redshifts cannot come from two equal-speed opposite jets.
 
@@ -2056,7 +2092,10 @@ def _check_pair(setup, rows):
         comp = {}
         for r in mine:
             comp.setdefault(r["k"], (r["z"], r["z_err"]))
-        if len(comp) != 2 or any("not_detected" in r["flags"] for r in mine):
+        if len(comp) != 2:
+            continue
+        _label_in_doubt(mine)
+        if any("not_detected" in r["flags"] for r in mine):
             continue
         (za, ea), (zr, er) = comp[0], comp[1]
         prod = (1 + za) * (1 + zr) / hz2
@@ -2175,6 +2214,7 @@ def _check_overlaps(setup, rows, x, y, sig, fitted, also=()):
                     f"(expected at {pos:.6g}): its centre could be pulled by up to {pull:.2g}, more than its error {r['centre_err']:.2g}"
                 )
             else:
+                r["maybe_other"] = True  # the feature may not be this component's line at all
                 r["notes"].append(
                     f"{r['line']} {r['component']} at {r['centre']:.6g} may be, in good part or alone, {name} of the {label} "
                     f"component (expected at {pos:.6g} with up to {min(share, 99):.2g} times this feature's flux): which line "
