@@ -2057,7 +2057,8 @@ def _label_in_doubt(mine):
     """Flag ``unpaired`` the component of a pair whose partner may be another line altogether.
 
     Components are labelled by increasing z. Where the partner's feature may be, alone, a line of
-    the other component's gas (a blend that could carry its whole flux), the two features may be
+    the other component's gas (a blend that could carry :data:`RIVAL_FRACTION` or more of its
+    flux, see :func:`_check_overlaps`), the two features may be
     one jet seen in two lines: this one's label (approaching or receding) is then not decided by
     the data either (found with a tied H-alpha + He I 5876 pair whose approaching jet lay off the
     spectrum: the receding jet came out 'approaching', ok, thousands of sigma off).
@@ -2208,13 +2209,14 @@ def _check_overlaps(setup, rows, x, y, sig, fitted, also=()):
         for (name, label), (pull, share, pos) in worst.items():
             if "blend" not in r["flags"]:
                 r["flags"].append("blend")
+            if share > RIVAL_FRACTION:
+                r["maybe_other"] = True  # the feature may not be this component's line at all
             if pull > r["centre_err"]:
                 r["notes"].append(
                     f"{r['line']} {r['component']} at {r['centre']:.6g} may be blended with {name} of the {label} component "
                     f"(expected at {pos:.6g}): its centre could be pulled by up to {pull:.2g}, more than its error {r['centre_err']:.2g}"
                 )
             else:
-                r["maybe_other"] = True  # the feature may not be this component's line at all
                 r["notes"].append(
                     f"{r['line']} {r['component']} at {r['centre']:.6g} may be, in good part or alone, {name} of the {label} "
                     f"component (expected at {pos:.6g} with up to {min(share, 99):.2g} times this feature's flux): which line "
