@@ -1961,27 +1961,28 @@ def _flag_dependants(setup, rows, z_same, z_other, undecided):
         g, c = r["group"], r["k"]
         if (g, c) == undecided or "id_ambiguous" in r["flags"]:
             continue
-        if g == undecided[0]:
-            rank_same = int(np.argsort(np.argsort(np.asarray(z_same[g], float)))[c])
-            rank_other = int(np.argsort(np.argsort(np.asarray(z_other[g], float)))[c])
-            if rank_same != rank_other:
-                for q in rows:
-                    if q["group"] == g and q["k"] == c:
-                        q["flags"].append("id_ambiguous")
-                r["notes"].append(
-                    f"{r['line']} {r['component']}: read the other way, the {setup.labels[k]} component lies on this one's other "
-                    f"side in z: which jet this one belongs to (its label, by increasing z) is not decided"
-                )
-                continue
         moved = abs(float(z_other[g][c]) - float(z_same[g][c]))
-        if np.isfinite(moved) and moved > r["z_err"]:
-            for q in rows:
-                if q["group"] == g and q["k"] == c:
-                    q["flags"].append("id_ambiguous")
-            r["notes"].append(
-                f"{r['line']} {r['component']}: its z moves by {moved / r['z_err']:.1f} sigma between the two readings of the "
+        if g == undecided[0] and _rank(z_same[g], c) != _rank(z_other[g], c):
+            note = (
+                f"read the other way, the {setup.labels[k]} component lies on this one's other side in z: "
+                "which jet this one belongs to (its label, by increasing z) is not decided"
+            )
+        elif np.isfinite(moved) and moved > r["z_err"]:
+            note = (
+                f"its z moves by {moved / r['z_err']:.1f} sigma between the two readings of the "
                 f"{setup.labels[k]} component, which the data do not decide"
             )
+        else:
+            continue
+        for q in rows:
+            if q["group"] == g and q["k"] == c:
+                q["flags"].append("id_ambiguous")
+        r["notes"].append(f"{r['line']} {r['component']}: {note}")
+
+
+def _rank(z, c) -> int:
+    """Place of component c when the components' z are sorted (0: the lowest)."""
+    return int(np.argsort(np.argsort(np.asarray(z, float)))[c])
 
 
 def _assess(setup, rows, info):
