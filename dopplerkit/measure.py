@@ -2082,9 +2082,11 @@ def _check_pair(setup, rows):
 
     Such jets give 1 + z = Gamma (1 -+ beta cos theta) (1 + host_z), so (1 + z_a)(1 + z_r) =
     Gamma**2 (1 - beta**2 cos**2 theta) (1 + host_z)**2 >= (1 + host_z)**2: the transverse Doppler
-    effect keeps the product at or above 1 whatever the angle (Margon 1984, ARA&A 22, 507). A pair more than _ID_SIGMA sigma below that is not two jets in this line: one feature
-    is probably another line (a Balmer or He I line of the other jet, the real one off the
-    spectrum). Pairs with a component not detected are left to that flag.
+    effect keeps the product at or above 1 whatever the angle (Margon 1984, ARA&A 22, 507). A pair
+    more than _ID_SIGMA sigma below that is not two jets in this line: one feature is probably
+    another line (a Balmer or He I line of the other jet, the real one off the spectrum). Pairs with a component not detected are left to that flag. Absorption is not
+    tested: two troughs are more often two parts of one outflow (both blueshifted) than a jet
+    pair, and nothing tells them apart here.
     """
     if not setup.jet_pair:
         return
@@ -2097,7 +2099,7 @@ def _check_pair(setup, rows):
         if len(comp) != 2:
             continue
         _label_in_doubt(mine)
-        if any("not_detected" in r["flags"] for r in mine):
+        if setup.kind != "emission" or any("not_detected" in r["flags"] for r in mine):
             continue
         (za, ea), (zr, er) = comp[0], comp[1]
         prod = (1 + za) * (1 + zr) / hz2
