@@ -101,8 +101,9 @@ _SAME_GAS_WEAKER = {"He I 7065": 0.05, "He I 4471": 0.04}
 # (He/H ~ 0.1 by number; common practice, no source). He I 5876/H-beta is ~0.1-0.15 in nebulae
 # (Osterbrock & Ferland 2006; from memory) and up to ~1 in jets (common practice, no source): a
 # generous [1/30, 2] makes each the other's (not required) evidence, so that two features read as
-# two components of one line are also tested as H-beta and He I 5876 of ONE component. The Mg II and C IV doublets lie between
-# 2:1 (optically thin, the ratio of oscillator strengths) and 1:1 (thick): common practice, no source.
+# two components of one line are also tested as H-beta and He I 5876 of ONE component. The Mg II
+# and C IV doublets lie between 2:1 (optically thin, the ratio of oscillator strengths) and 1:1
+# (thick): common practice, no source.
 _EVIDENCE = {
     "H-alpha": (("H-beta", 0.05, 0.45, False), ("H-gamma", 0.02, 0.22, False)),
     "H-beta": (("H-alpha", 2.5, 20.0, True), ("H-gamma", 0.2, 0.55, False), ("He I 5876", 1 / 30, 2.0, False)),
@@ -1095,6 +1096,7 @@ class LineFitter:
         _check_identification(s, rows, x, y, sigma * f, host=host, also=extra)
         _check_swaps(s, rows, x, y, sigma, cont, host, self.window, self.window_kms, f * f)
         _check_rivals(s, rows, x, y, sigma * f, cont if cont is not None else _median_continuum(x, y), host)
+        _check_labels(s, rows)
         _check_pair(s, rows)
         _check_edges(rows, x)
         _assess(s, rows, info)
@@ -1222,18 +1224,6 @@ def _flag_undetected(rows, gi, k, dchi2, need):
                 r["notes"].append(
                     f"{r['line']} {r['component']}: not detected (removing it raises chi-square by {dchi2:.1f}; "
                     f"a real line would raise it by > {need:.1f} after the look-elsewhere effect)"
-                )
-    if flag == "not_detected":
-        # components are labelled by increasing z: with one of them absent, the others' labels
-        # (approaching/receding) are not decided by the data, though their values may be right;
-        # a row read by its label (the receding jet's z) would be confidently wrong: 'unpaired'
-        for r in rows:
-            if r["group"] == gi and r["k"] != k:
-                if "unpaired" not in r["flags"]:
-                    r["flags"].append("unpaired")
-                r["notes"].append(
-                    f"{r['line']} {r['component']}: labelled by increasing z beside a component that is not detected; "
-                    "which jet it belongs to is not decided by the data"
                 )
 
 
@@ -2054,27 +2044,35 @@ def _note_errors(rows, info, note):
         rows[0]["notes"].append(note)
 
 
-def _label_in_doubt(mine):
-    """Flag ``unpaired`` the component of a pair whose partner may be another line altogether.
+def _check_labels(setup, rows):
+    """Flag ``unpaired`` every component whose label the data do not decide.
 
-    Components are labelled by increasing z. Where the partner's feature may be, alone, a line of
-    the other component's gas (a blend that could carry :data:`RIVAL_FRACTION` or more of its
-    flux, see :func:`_check_overlaps`), the two features may be
-    one jet seen in two lines: this one's label (approaching or receding) is then not decided by
-    the data either (found with a tied H-alpha + He I 5876 pair whose approaching jet lay off the
-    spectrum: the receding jet came out 'approaching', ok, thousands of sigma off).
+    Components are labelled by increasing z (approaching, receding for a jet pair). Where another
+    component of the line is not detected, or its feature may be, alone, a line of another
+    component's gas (a blend that could carry :data:`RIVAL_FRACTION` or more of its flux, see
+    :func:`_check_overlaps`), the features left may be one jet seen in one or two lines: this
+    one's z and flux stand, but its label does not (found with one jet off the spectrum: the
+    other came out 'approaching', ok, thousands of sigma off).
     """
-    doubt = {r["k"] for r in mine if r.get("maybe_other")}
-    if len(doubt) != 1:
+    if setup.components < 2:
         return
-    for r in mine:
-        if r["k"] in doubt or "unpaired" in r["flags"] or "not_detected" in r["flags"]:
-            continue
-        r["flags"].append("unpaired")
-        r["notes"].append(
-            f"{r['line']} {r['component']}: labelled by increasing z beside a component whose feature may be another line "
-            "of this one's gas; which jet it belongs to is not decided by the data"
-        )
+    for gi in range(len(setup.groups)):
+        mine = [r for r in rows if r["group"] == gi]
+        why = {}
+        for r in mine:
+            if "not_detected" in r["flags"]:
+                why[r["k"]] = "a component that is not detected"
+            elif r.get("maybe_other"):
+                why.setdefault(r["k"], "a component whose feature may be another line of this one's gas")
+        for r in mine:
+            others = [w for k, w in why.items() if k != r["k"]]
+            if not others or "not_detected" in r["flags"] or "unpaired" in r["flags"]:
+                continue
+            r["flags"].append("unpaired")
+            r["notes"].append(
+                f"{r['line']} {r['component']}: labelled by increasing z beside {others[0]}; "
+                "which jet it belongs to is not decided by the data"
+            )
 
 
 def _check_pair(setup, rows):
@@ -2084,23 +2082,19 @@ def _check_pair(setup, rows):
     Gamma**2 (1 - beta**2 cos**2 theta) (1 + host_z)**2 >= (1 + host_z)**2: the transverse Doppler
     effect keeps the product at or above 1 whatever the angle (Margon 1984, ARA&A 22, 507). A pair
     more than _ID_SIGMA sigma below that is not two jets in this line: one feature is probably
-    another line (a Balmer or He I line of the other jet, the real one off the spectrum). Pairs with a component not detected are left to that flag. Absorption is not
-    tested: two troughs are more often two parts of one outflow (both blueshifted) than a jet
-    pair, and nothing tells them apart here.
+    another line (a Balmer or He I line of the other jet, the real one off the spectrum). Pairs
+    with a component not detected are left to that flag. Absorption is not tested: two troughs
+    are more often two parts of one outflow (both blueshifted) than a jet pair, and nothing tells
+    them apart here.
     """
-    if not setup.jet_pair:
+    if not setup.jet_pair or setup.kind != "emission":
         return
     hz2 = (1.0 + setup.host_z) ** 2
     for gi in range(len(setup.groups)):
         mine = [r for r in rows if r["group"] == gi]
-        comp = {}
-        for r in mine:
-            comp.setdefault(r["k"], (r["z"], r["z_err"]))
-        if len(comp) != 2:
+        if any("not_detected" in r["flags"] for r in mine):
             continue
-        _label_in_doubt(mine)
-        if setup.kind != "emission" or any("not_detected" in r["flags"] for r in mine):
-            continue
+        comp = {r["k"]: (r["z"], r["z_err"]) for r in mine}
         (za, ea), (zr, er) = comp[0], comp[1]
         prod = (1 + za) * (1 + zr) / hz2
         err = math.hypot((1 + zr) * ea, (1 + za) * er) / hz2
@@ -2651,6 +2645,7 @@ def _lmfit_measure(setup, x, y, sig, starts, cont0, window, window_kms, host=Non
     _check_identification(setup, rows, x, y, sig * f, host=host, also=also)
     _check_swaps(setup, rows, x, y, sig, cont0, host, window, window_kms, f * f)
     _check_rivals(setup, rows, x, y, sig * f, cont0, host)
+    _check_labels(setup, rows)
     _check_pair(setup, rows)
     _check_edges(rows, x)
     _assess(setup, rows, info)
