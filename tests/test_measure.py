@@ -959,7 +959,7 @@ def test_a_component_that_may_be_another_jets_line_alone_is_not_ok():
 
 def _jet_pair_with_other_lines(beta, angle_deg, lo, hi, fwhm, q, seed, helium=True):
     # both jets carry H-alpha, H-beta at the case-B ratio 1/2.86 (Osterbrock & Ferland 2006, table
-    # 4.2) and, if asked, He I 5876 and 6678 at 0.1 and 0.03 of H-alpha (invented, within the range
+    # 4.2; from memory) and, if asked, He I 5876 and 6678 at 0.1 and 0.03 of H-alpha (invented, within the range
     # of jets; common practice, no source); the receding jet is q times the approaching one
     kms = u.km / u.s
     za, zr = float(dk.redshift(beta, angle_deg * u.deg)), float(dk.redshift(beta, (180 - angle_deg) * u.deg))
@@ -1008,9 +1008,10 @@ def test_a_pair_no_two_equal_jets_give_is_unphysical(method):
 
 
 def _tied_pair(beta, angle_deg, lo, hi, fwhm, q, helium, seed, snr):
-    # both jets: H-alpha, H-beta at the case-B ratio 1/2.86 (Osterbrock & Ferland 2006, table 4.2),
-    # He I 5876 at `helium` times H-alpha and He I 6678 at 0.28 of He I 5876 (case B, Benjamin,
-    # Skillman & Smits 1999, ApJ 514, 307); the receding jet q times the approaching one
+    # both jets: H-alpha, H-beta at the case-B ratio 1/2.86 (Osterbrock & Ferland 2006, table 4.2;
+    # from memory), He I 5876 at `helium` times H-alpha and He I 6678 at 0.28 of He I 5876 (case B,
+    # Benjamin, Skillman & Smits 1999, ApJ 514, 307; from memory); the receding jet q times the
+    # approaching one
     kms = u.km / u.s
     za, zr = float(dk.redshift(beta, angle_deg * u.deg)), float(dk.redshift(beta, (180 - angle_deg) * u.deg))
     comps = []
